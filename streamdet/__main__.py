@@ -1,0 +1,3 @@
+from streamdet.cli import main
+
+raise SystemExit(main())

@@ -1,0 +1,51 @@
+"""Decoders from bytes to :class:`~streamdet.core.points.PointBatch` plus per-record errors.
+
+Every decoder takes the raw bytes of one message or file and returns
+``(batch, errors)``; it never raises on bad input.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+
+from streamdet.codecs.common import Decoded, TimeRules
+from streamdet.codecs.csv import decode_csv
+from streamdet.codecs.influx import decode_influx
+from streamdet.codecs.json import decode_json
+
+Decoder = Callable[..., Decoded]
+
+DECODERS: dict[str, Decoder] = {
+    "json": decode_json,
+    "influx": decode_influx,
+    "csv": decode_csv,
+}
+
+
+def decoder_for(name: str) -> Decoder:
+    try:
+        return DECODERS[name]
+    except KeyError:
+        raise ValueError(f"unknown format {name!r}; valid: {', '.join(DECODERS)}") from None
+
+
+def format_for_path(path: str) -> str:
+    """Guess a file's format from its name: .csv, .jsonl/.json/.ndjson, .lp/.influx/.txt."""
+    lower = path.lower()
+    for suffix in (".gz",):
+        if lower.endswith(suffix):
+            lower = lower[: -len(suffix)]
+    if lower.endswith(".csv"):
+        return "csv"
+    if lower.endswith((".jsonl", ".json", ".ndjson")):
+        return "json"
+    if lower.endswith((".lp", ".influx", ".line", ".txt")):
+        return "influx"
+    raise ValueError(
+        f"cannot tell the format of {path!r} from its name; use .csv, .jsonl or .lp, "
+        "or pass --format"
+    )
+
+
+__all__ = ["DECODERS", "Decoded", "TimeRules", "decode_csv", "decode_influx", "decode_json",
+           "decoder_for", "format_for_path"]

@@ -1,0 +1,132 @@
+"""Shared decoding rules: how a time or a value is read, and when a record is refused.
+
+Epoch numbers are told apart by magnitude (documented in the README):
+``|x| < 1e11`` seconds, ``< 1e14`` milliseconds, ``< 1e17`` microseconds,
+otherwise nanoseconds. ISO 8601 strings may use ``T`` or a space; a time without
+an offset is UTC.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from datetime import UTC, datetime
+
+from streamdet.core.points import DecodeError, PointBatch, PointBuilder, shorten
+
+
+class RecordError(ValueError):
+    """Raised inside a decoder for one bad record; turned into a DecodeError."""
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class TimeRules:
+    """Plausibility rules for event times.
+
+    ``now`` is supplied by the adapter (the engine never reads the clock); a point
+    more than ``max_future`` seconds after it is refused. ``now=None`` skips the check.
+    """
+
+    now: float | None = None
+    max_future: float = 3600.0
+
+    def check(self, t: float) -> float:
+        if not math.isfinite(t):
+            raise RecordError("time is not a finite number")
+        if self.now is not None and t > self.now + self.max_future:
+            ahead = t - self.now
+            raise RecordError(
+                f"time is {ahead:.0f} s in the future (more than max_future={self.max_future:g} s)"
+            )
+        return t
+
+
+@dataclass(slots=True)
+class Decoded:
+    """A decoder's result: the good points and one error per refused record."""
+
+    points: PointBatch
+    errors: list[DecodeError] = field(default_factory=list)
+    records: int = 0  # records seen, good or bad
+
+
+def epoch_to_seconds(x: float) -> float:
+    """Epoch number in s, ms, us or ns (by magnitude) to seconds.
+
+    >>> epoch_to_seconds(1700000000), epoch_to_seconds(1700000000000)
+    (1700000000.0, 1700000000.0)
+    """
+    ax = abs(x)
+    if ax < 1e11:
+        return float(x)
+    if ax < 1e14:
+        return x / 1e3
+    if ax < 1e17:
+        return x / 1e6
+    return x / 1e9
+
+
+def parse_time(raw: object) -> float:
+    """Epoch seconds from an epoch number or an ISO 8601 string."""
+    if isinstance(raw, bool):
+        raise RecordError("time must be a number or an ISO 8601 string, got a boolean")
+    if isinstance(raw, int | float):
+        if not math.isfinite(raw):
+            raise RecordError("time is not a finite number")
+        return epoch_to_seconds(float(raw))
+    if isinstance(raw, str):
+        text = raw.strip()
+        try:
+            return epoch_to_seconds(float(text))
+        except ValueError:
+            pass
+        try:
+            dt = datetime.fromisoformat(text)
+        except ValueError:
+            raise RecordError(f"time {shorten(text, 40)!r} is not ISO 8601 or an epoch") from None
+        if dt.tzinfo is None:
+            dt = dt.replace(tzinfo=UTC)
+        return dt.timestamp()
+    if raw is None:
+        raise RecordError("missing field 'time'")
+    raise RecordError(f"time must be a number or an ISO 8601 string, got {type(raw).__name__}")
+
+
+def parse_value(raw: object) -> float:
+    """A finite float from a number or a numeric string."""
+    if isinstance(raw, bool):
+        raise RecordError("value must be numeric, got a boolean")
+    if isinstance(raw, int | float):
+        v = float(raw)
+    elif isinstance(raw, str):
+        try:
+            v = float(raw.strip())
+        except ValueError:
+            raise RecordError(f"value {shorten(raw, 40)!r} is not numeric") from None
+    elif raw is None:
+        raise RecordError("missing field 'value'")
+    else:
+        raise RecordError(f"value must be numeric, got {type(raw).__name__}")
+    if math.isnan(v):
+        raise RecordError("value is NaN")
+    if math.isinf(v):
+        raise RecordError("value is infinite")
+    return v
+
+
+class ErrorCollector:
+    """Accumulates errors for one decode call with a common position prefix."""
+
+    __slots__ = ("errors", "prefix")
+
+    def __init__(self, prefix: str) -> None:
+        self.prefix = prefix
+        self.errors: list[DecodeError] = []
+
+    def add(self, where: str, reason: str, record: bytes | str) -> None:
+        position = f"{self.prefix} {where}".strip() if self.prefix else where
+        self.errors.append(DecodeError(position=position, reason=reason, record=shorten(record)))
+
+
+def finish(builder: PointBuilder, errors: ErrorCollector, records: int) -> Decoded:
+    return Decoded(points=builder.build(), errors=errors.errors, records=records)

@@ -1,0 +1,479 @@
+"""YAML configuration as frozen dataclasses, validated with errors that name the key path.
+
+``load_config(path)`` or ``parse_config(mapping)`` returns a :class:`Config` or raises
+:class:`ConfigError` listing every problem found (not just the first).
+
+>>> cfg = parse_config({"rules": [{"name": "all", "width": 4}]})
+>>> cfg.rules[0].width, cfg.rules[0].confirm.steps
+(4.0, 5)
+"""
+
+from __future__ import annotations
+
+import fnmatch
+import math
+import re
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import yaml
+
+AGGREGATIONS = ("mean", "sum", "min", "max", "last", "count")
+DIRECTIONS = ("both", "above", "below")
+KINDS = ("gauge", "counter")
+FORMATS = ("json", "influx", "csv")
+_UNITS = {"s": 1, "m": 60, "h": 3600, "d": 86400, "w": 604800}
+_DURATION = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*(ms|s|m|h|d|w)?\s*$")
+_STEPS = re.compile(r"^\s*(\d+)\s*steps?\s*$")
+
+
+class ConfigError(ValueError):
+    """Invalid configuration; ``problems`` holds one ``key.path: what is wrong`` line each."""
+
+    def __init__(self, problems: list[str]) -> None:
+        self.problems = problems
+        super().__init__("invalid configuration:\n  " + "\n  ".join(problems))
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class Span:
+    """A length given either in seconds or in steps (``"2h"`` or ``"12 steps"``)."""
+
+    seconds: float | None = None
+    steps: int | None = None
+
+    def in_steps(self, step: float, minimum: int = 1) -> int:
+        if self.steps is not None:
+            return max(minimum, self.steps)
+        assert self.seconds is not None
+        return max(minimum, math.ceil(self.seconds / step - 1e-9))
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class LabelMatcher:
+    """Matches one label value: a glob, a regular expression, or the negation of either."""
+
+    glob: str | None = None
+    regex: str | None = None
+    negate: bool = False
+
+    def matches(self, value: str | None) -> bool:
+        if value is None:
+            hit = False
+        elif self.regex is not None:
+            hit = re.fullmatch(self.regex, value) is not None
+        else:
+            hit = fnmatch.fnmatchcase(value, self.glob or "*")
+        return hit != self.negate
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class Match:
+    metric: str = "*"
+    labels: tuple[tuple[str, LabelMatcher], ...] = ()
+
+    def matches(self, metric: str, labels: Mapping[str, str]) -> bool:
+        if not fnmatch.fnmatchcase(metric, self.metric):
+            return False
+        return all(m.matches(labels.get(name)) for name, m in self.labels)
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class HoltParams:
+    alpha: float = 0.1
+    beta: float = 0.01
+    phi: float = 0.9
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class SeasonalParams:
+    enabled: bool = True
+    alpha: float = 0.05
+    beta: float = 0.005
+    phi: float = 0.9
+    memory_weeks: float = 6.0
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class LagParams:
+    enabled: bool = True
+    resolution: float = 7200.0
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class QuantileParams:
+    enabled: bool = True
+    rate: float = 0.05
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class BlendParams:
+    learning_rate: float = 0.5
+    share: float = 0.02
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class ForecasterParams:
+    holt: HoltParams = field(default_factory=HoltParams)
+    seasonal: SeasonalParams = field(default_factory=SeasonalParams)
+    lags: LagParams = field(default_factory=LagParams)
+    quantile: QuantileParams = field(default_factory=QuantileParams)
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class Rule:
+    """Settings for the series a rule selects. Defaults are the README's."""
+
+    name: str = "default"
+    match: Match = field(default_factory=Match)
+    kind: str = "gauge"
+    step: float | None = 60.0  # None: inferred per series ("auto")
+    aggregation: str = "mean"
+    lateness: float = 0.0
+    width: float = 3.0
+    min_width: float = 0.0
+    scale_floor: float = 0.5
+    direction: str = "both"
+    confirm_steps: int = 5
+    confirm_fraction: float = 0.6
+    clear_steps: int = 3
+    relearn_after: Span = field(default_factory=lambda: Span(seconds=7200.0))
+    warmup: Span = field(default_factory=lambda: Span(seconds=86400.0))
+    forecasters: ForecasterParams = field(default_factory=ForecasterParams)
+    blend: BlendParams = field(default_factory=BlendParams)
+
+    @property
+    def confirm_needed(self) -> int:
+        """Outside steps needed in the confirm window to open a breach."""
+        return max(1, math.ceil(self.confirm_fraction * self.confirm_steps - 1e-9))
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class SeriesLimits:
+    max_series: int = 200_000
+    idle_ttl: float = 7 * 86400.0
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class InputConfig:
+    format: str = "json"
+    max_future: float = 3600.0
+    influx_precision: str = "ns"
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class Config:
+    rules: tuple[Rule, ...] = (Rule(),)
+    series: SeriesLimits = field(default_factory=SeriesLimits)
+    input: InputConfig = field(default_factory=InputConfig)
+    extra: Mapping[str, Any] = field(default_factory=dict)  # sections owned by adapters
+
+    def rule_for(self, metric: str, labels: Mapping[str, str]) -> int | None:
+        """Index of the first rule whose match selects the series, or None."""
+        for i, rule in enumerate(self.rules):
+            if rule.match.matches(metric, labels):
+                return i
+        return None
+
+
+# ---------------------------------------------------------------- parsing
+
+_DEFAULTS: dict[str, Any] = {
+    c.__name__: c()
+    for c in (HoltParams, SeasonalParams, LagParams, QuantileParams, BlendParams,
+              SeriesLimits, InputConfig)
+}
+
+
+def parse_duration(raw: object) -> float:
+    """Seconds from a number or a string like ``90s``, ``5m``, ``2h``, ``1d``, ``1w``."""
+    if isinstance(raw, bool):
+        raise ValueError("expected a duration like 90s, 5m, 2h, 1d")
+    if isinstance(raw, int | float):
+        return float(raw)
+    if isinstance(raw, str):
+        m = _DURATION.match(raw)
+        if m:
+            unit = m.group(2) or "s"
+            return float(m.group(1)) * (0.001 if unit == "ms" else _UNITS[unit])
+    raise ValueError(f"expected a duration like 90s, 5m, 2h, 1d, got {raw!r}")
+
+
+class _Section:
+    """Reads one mapping, recording problems under its key path."""
+
+    def __init__(self, raw: object, path: str, problems: list[str]) -> None:
+        self.path = path
+        self.problems = problems
+        if raw is None:
+            raw = {}
+        if not isinstance(raw, Mapping):
+            problems.append(f"{path or '(top level)'}: expected a mapping, got {type(raw).__name__}")
+            raw = {}
+        self.raw: Mapping[str, Any] = raw
+        self.seen: set[str] = set()
+
+    def key(self, name: str) -> str:
+        return f"{self.path}.{name}" if self.path else name
+
+    def bad(self, name: str, msg: str) -> None:
+        self.problems.append(f"{self.key(name)}: {msg}")
+
+    def get(self, name: str, default: Any) -> Any:
+        self.seen.add(name)
+        return self.raw.get(name, default)
+
+    def number(self, name: str, default: float, *, lo: float | None = None,
+               hi: float | None = None, lo_open: bool = False, integer: bool = False) -> Any:
+        raw = self.get(name, default)
+        if isinstance(raw, bool) or not isinstance(raw, int | float) or (
+            integer and not float(raw).is_integer()
+        ):
+            kind = "a whole number" if integer else "a number"
+            self.bad(name, f"expected {kind}, got {raw!r}")
+            return default
+        value = int(raw) if integer else float(raw)
+        if not math.isfinite(value):
+            self.bad(name, f"must be finite, got {raw!r}")
+            return default
+        if lo is not None and (value <= lo if lo_open else value < lo):
+            self.bad(name, f"must be {'>' if lo_open else '>='} {lo:g}, got {raw!r}")
+            return default
+        if hi is not None and value > hi:
+            self.bad(name, f"must be <= {hi:g}, got {raw!r}")
+            return default
+        return value
+
+    def choice(self, name: str, default: str, choices: tuple[str, ...]) -> str:
+        raw = self.get(name, default)
+        if raw not in choices:
+            self.bad(name, f"expected one of {', '.join(choices)}, got {raw!r}")
+            return default
+        return raw
+
+    def boolean(self, name: str, default: bool) -> bool:
+        raw = self.get(name, default)
+        if not isinstance(raw, bool):
+            self.bad(name, f"expected true or false, got {raw!r}")
+            return default
+        return raw
+
+    def text(self, name: str, default: str) -> str:
+        raw = self.get(name, default)
+        if not isinstance(raw, str) or not raw:
+            self.bad(name, f"expected a non-empty string, got {raw!r}")
+            return default
+        return raw
+
+    def duration(self, name: str, default: float, *, positive: bool = False) -> float:
+        raw = self.get(name, default)
+        try:
+            value = parse_duration(raw)
+        except ValueError as exc:
+            self.bad(name, str(exc))
+            return default
+        if value < 0 or (positive and value == 0):
+            self.bad(name, f"must be {'> 0' if positive else '>= 0'}, got {raw!r}")
+            return default
+        return value
+
+    def span(self, name: str, default: Span) -> Span:
+        raw = self.get(name, None)
+        if raw is None:
+            return default
+        if isinstance(raw, str) and (m := _STEPS.match(raw)):
+            return Span(steps=int(m.group(1)))
+        try:
+            return Span(seconds=parse_duration(raw))
+        except ValueError:
+            self.bad(name, f"expected a duration like 2h or a count like '12 steps', got {raw!r}")
+            return default
+
+    def section(self, name: str) -> _Section:
+        return _Section(self.get(name, None), self.key(name), self.problems)
+
+    def done(self) -> None:
+        unknown = sorted(set(self.raw) - self.seen, key=str)
+        for name in unknown:
+            valid = ", ".join(sorted(self.seen))
+            self.problems.append(f"{self.key(str(name))}: unknown key; valid keys here: {valid}")
+
+
+def _unit_interval(s: _Section, name: str, default: float) -> float:
+    return s.number(name, default, lo=0.0, hi=1.0, lo_open=True)
+
+
+def _parse_match(s: _Section) -> Match:
+    metric = s.text("metric", "*")
+    labels_sec = s.section("labels")
+    labels: list[tuple[str, LabelMatcher]] = []
+    for name, raw in labels_sec.raw.items():
+        labels_sec.seen.add(name)
+        key = labels_sec.key(str(name))
+        if isinstance(raw, str | int | float) and not isinstance(raw, bool):
+            labels.append((str(name), LabelMatcher(glob=str(raw))))
+            continue
+        if isinstance(raw, Mapping):
+            m = _Section(raw, key, s.problems)
+            regex = m.get("regex", None)
+            not_ = m.get("not", None)
+            not_regex = m.get("not_regex", None)
+            m.done()
+            given = [x for x in (regex, not_, not_regex) if x is not None]
+            if len(given) != 1:
+                s.problems.append(f"{key}: give exactly one of regex, not, not_regex")
+                continue
+            if regex is not None or not_regex is not None:
+                pattern = str(regex if regex is not None else not_regex)
+                try:
+                    re.compile(pattern)
+                except re.error as exc:
+                    s.problems.append(f"{key}: invalid regular expression ({exc})")
+                    continue
+                labels.append((str(name), LabelMatcher(regex=pattern, negate=not_regex is not None)))
+            else:
+                labels.append((str(name), LabelMatcher(glob=str(not_), negate=True)))
+            continue
+        s.problems.append(f"{key}: expected a glob string or a mapping with regex/not/not_regex")
+    s.done()
+    return Match(metric=metric, labels=tuple(labels))
+
+
+def _parse_forecasters(s: _Section) -> ForecasterParams:
+    h = s.section("holt")
+    holt = HoltParams(
+        alpha=_unit_interval(h, "alpha", _DEFAULTS['HoltParams'].alpha),
+        beta=h.number("beta", _DEFAULTS['HoltParams'].beta, lo=0.0, hi=1.0),
+        phi=h.number("phi", _DEFAULTS['HoltParams'].phi, lo=0.0, hi=1.0),
+    )
+    h.done()
+    z = s.section("seasonal")
+    seasonal = SeasonalParams(
+        enabled=z.boolean("enabled", True),
+        alpha=_unit_interval(z, "alpha", _DEFAULTS['SeasonalParams'].alpha),
+        beta=z.number("beta", _DEFAULTS['SeasonalParams'].beta, lo=0.0, hi=1.0),
+        phi=z.number("phi", _DEFAULTS['SeasonalParams'].phi, lo=0.0, hi=1.0),
+        memory_weeks=z.number("memory_weeks", _DEFAULTS['SeasonalParams'].memory_weeks, lo=0.0, lo_open=True),
+    )
+    z.done()
+    g = s.section("lags")
+    lags = LagParams(
+        enabled=g.boolean("enabled", True),
+        resolution=g.duration("resolution", _DEFAULTS['LagParams'].resolution, positive=True),
+    )
+    if lags.resolution > 86400 or 86400 % lags.resolution:
+        g.bad("resolution", f"must divide one day evenly (e.g. 1h, 2h, 30m), got {lags.resolution:g} s")
+    g.done()
+    q = s.section("quantile")
+    quantile = QuantileParams(
+        enabled=q.boolean("enabled", True),
+        rate=_unit_interval(q, "rate", _DEFAULTS['QuantileParams'].rate),
+    )
+    q.done()
+    s.done()
+    return ForecasterParams(holt=holt, seasonal=seasonal, lags=lags, quantile=quantile)
+
+
+def _parse_rule(s: _Section, index: int) -> Rule:
+    d = Rule()
+    name = s.text("name", f"rule{index}")
+    match = _parse_match(s.section("match"))
+    raw_step = s.get("step", "60s")
+    step: float | None
+    if raw_step == "auto":
+        step = None
+    else:
+        s.seen.discard("step")
+        step = s.duration("step", 60.0, positive=True)
+    lateness = s.duration("lateness", 0.0)
+    if step is not None and lateness >= step:
+        s.bad("lateness", f"must be shorter than the step ({step:g} s), got {lateness:g} s")
+    confirm = s.section("confirm")
+    confirm_steps = confirm.number("steps", d.confirm_steps, lo=1, hi=32, integer=True)
+    confirm_fraction = _unit_interval(confirm, "fraction", d.confirm_fraction)
+    confirm.done()
+    clear = s.section("clear")
+    clear_steps = clear.number("steps", d.clear_steps, lo=1, hi=10_000, integer=True)
+    clear.done()
+    blend_sec = s.section("blend")
+    blend = BlendParams(
+        learning_rate=blend_sec.number("learning_rate", _DEFAULTS['BlendParams'].learning_rate, lo=0.0),
+        share=blend_sec.number("share", _DEFAULTS['BlendParams'].share, lo=0.0, hi=1.0),
+    )
+    blend_sec.done()
+    rule = Rule(
+        name=name,
+        match=match,
+        kind=s.choice("kind", d.kind, KINDS),
+        step=step,
+        aggregation=s.choice("aggregation", d.aggregation, AGGREGATIONS),
+        lateness=lateness,
+        width=s.number("width", d.width, lo=0.0, lo_open=True),
+        min_width=s.number("min_width", d.min_width, lo=0.0),
+        scale_floor=s.number("scale_floor", d.scale_floor, lo=0.0, hi=1.0),
+        direction=s.choice("direction", d.direction, DIRECTIONS),
+        confirm_steps=confirm_steps,
+        confirm_fraction=confirm_fraction,
+        clear_steps=clear_steps,
+        relearn_after=s.span("relearn_after", d.relearn_after),
+        warmup=s.span("warmup", d.warmup),
+        forecasters=_parse_forecasters(s.section("forecasters")),
+        blend=blend,
+    )
+    s.done()
+    return rule
+
+
+ADAPTER_SECTIONS = ("kafka", "state", "health", "output", "logging", "shadow")
+
+
+def parse_config(raw: object) -> Config:
+    """Validate a decoded YAML document; raises ConfigError naming every bad key path."""
+    problems: list[str] = []
+    top = _Section(raw, "", problems)
+    rules_raw = top.get("rules", None)
+    rules: list[Rule] = []
+    if rules_raw is None:
+        rules = [Rule()]
+    elif not isinstance(rules_raw, list) or not rules_raw:
+        problems.append("rules: expected a non-empty list of rules")
+    else:
+        for i, r in enumerate(rules_raw):
+            rules.append(_parse_rule(_Section(r, f"rules[{i}]", problems), i))
+        names = [r.name for r in rules]
+        for dup in sorted({n for n in names if names.count(n) > 1}):
+            problems.append(f"rules: rule name {dup!r} is used more than once")
+    srs = top.section("series")
+    series = SeriesLimits(
+        max_series=srs.number("max_series", _DEFAULTS['SeriesLimits'].max_series, lo=1, integer=True),
+        idle_ttl=srs.duration("idle_ttl", _DEFAULTS['SeriesLimits'].idle_ttl, positive=True),
+    )
+    srs.done()
+    inp = top.section("input")
+    input_cfg = InputConfig(
+        format=inp.choice("format", _DEFAULTS['InputConfig'].format, FORMATS),
+        max_future=inp.duration("max_future", _DEFAULTS['InputConfig'].max_future),
+        influx_precision=inp.choice("influx_precision", "ns", ("s", "ms", "us", "ns")),
+    )
+    inp.done()
+    extra = {name: top.get(name, None) for name in ADAPTER_SECTIONS}
+    extra = {k: v for k, v in extra.items() if v is not None}
+    top.done()
+    if problems:
+        raise ConfigError(problems)
+    return Config(rules=tuple(rules), series=series, input=input_cfg, extra=extra)
+
+
+def load_config(path: str | Path) -> Config:
+    """Read and validate a YAML file; file and YAML errors become ConfigError too."""
+    try:
+        text = Path(path).read_text(encoding="utf-8")
+    except OSError as exc:
+        raise ConfigError([f"{path}: cannot read ({exc.strerror})"]) from None
+    try:
+        raw = yaml.safe_load(text)
+    except yaml.YAMLError as exc:
+        raise ConfigError([f"{path}: not valid YAML ({exc})"]) from None
+    return parse_config(raw if raw is not None else {})
