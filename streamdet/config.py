@@ -99,7 +99,6 @@ class SeasonalParams:
 @dataclass(frozen=True, slots=True, kw_only=True)
 class LagParams:
     enabled: bool = True
-    resolution: float = 7200.0
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -168,6 +167,7 @@ class Config:
     rules: tuple[Rule, ...] = (Rule(),)
     series: SeriesLimits = field(default_factory=SeriesLimits)
     input: InputConfig = field(default_factory=InputConfig)
+    lag_resolution: float = 7200.0  # engine.lag_resolution: cell size of the lag rings
     extra: Mapping[str, Any] = field(default_factory=dict)  # sections owned by adapters
 
     def rule_for(self, metric: str, labels: Mapping[str, str]) -> int | None:
@@ -359,12 +359,7 @@ def _parse_forecasters(s: _Section) -> ForecasterParams:
     )
     z.done()
     g = s.section("lags")
-    lags = LagParams(
-        enabled=g.boolean("enabled", True),
-        resolution=g.duration("resolution", _DEFAULTS['LagParams'].resolution, positive=True),
-    )
-    if lags.resolution > 86400 or 86400 % lags.resolution:
-        g.bad("resolution", f"must divide one day evenly (e.g. 1h, 2h, 30m), got {lags.resolution:g} s")
+    lags = LagParams(enabled=g.boolean("enabled", True))
     g.done()
     q = s.section("quantile")
     quantile = QuantileParams(
@@ -458,12 +453,19 @@ def parse_config(raw: object) -> Config:
         influx_precision=inp.choice("influx_precision", "ns", ("s", "ms", "us", "ns")),
     )
     inp.done()
+    eng = top.section("engine")
+    lag_resolution = eng.duration("lag_resolution", 7200.0, positive=True)
+    if lag_resolution > 86400 or 86400 % lag_resolution:
+        eng.bad("lag_resolution", f"must divide one day evenly (e.g. 1h, 2h, 30m), got {lag_resolution:g} s")
+        lag_resolution = 7200.0
+    eng.done()
     extra = {name: top.get(name, None) for name in ADAPTER_SECTIONS}
     extra = {k: v for k, v in extra.items() if v is not None}
     top.done()
     if problems:
         raise ConfigError(problems)
-    return Config(rules=tuple(rules), series=series, input=input_cfg, extra=extra)
+    return Config(rules=tuple(rules), series=series, input=input_cfg,
+                  lag_resolution=lag_resolution, extra=extra)
 
 
 def load_config(path: str | Path) -> Config:

@@ -1,0 +1,65 @@
+"""Per-series weights over forecaster members: exponentially weighted average with fixed share.
+
+Herbster & Warmuth (1998), "Tracking the best expert": after each step every ready member's
+weight is multiplied by ``exp(-learning_rate * loss)``, then a fraction ``share`` of the total
+is spread evenly over the ready members, so a member that was poor for a while can recover
+quickly when the series changes character. The loss is the absolute error in units of the
+series' residual scale, capped at 10. Members still warming up have no say and keep their weight.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+
+import numpy as np
+
+from streamdet.core.columns import ColumnSpec, ColumnState, per_rule
+
+LOSS_CAP = 10.0
+
+
+class Blend(ColumnState):
+    prefix = "blend"
+
+    def __init__(self, capacity: int = 0, *, members: Sequence[str],
+                 learning_rate: float | Sequence[float] = 0.5,
+                 share: float | Sequence[float] = 0.02) -> None:
+        self.members = tuple(members)
+        super().__init__(capacity)
+        self.learning_rate = np.atleast_1d(np.asarray(learning_rate, dtype=np.float64))
+        self.share = np.atleast_1d(np.asarray(share, dtype=np.float64))
+
+    def columns(self) -> ColumnSpec:
+        return {"w": ("f4", (len(self.members),), 1.0 / len(self.members))}
+
+    def combine(self, rows: np.ndarray, preds: np.ndarray, ready: np.ndarray
+                ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Blended forecast, effective weights ``(members, rows)`` and whether any member is ready."""
+        w = self.w[rows].T.astype(np.float64) * ready
+        total = w.sum(axis=0)
+        any_ready = ready.any(axis=0)
+        uniform = ready / np.maximum(ready.sum(axis=0), 1)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            w = np.where(total > 0, w / total, uniform)
+        centre = (w * preds).sum(axis=0)
+        return centre, w, any_ready
+
+    def update(self, rows: np.ndarray, rule: np.ndarray, preds: np.ndarray, ready: np.ndarray,
+               y: np.ndarray, scale: np.ndarray) -> None:
+        w = self.w[rows].T.astype(np.float64)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            loss = np.minimum(np.abs(preds - y) / scale, LOSS_CAP)
+        loss = np.where(np.isfinite(loss), loss, LOSS_CAP)
+        mass = (w * ready).sum(axis=0)
+        v = np.where(ready, w * np.exp(-per_rule(self.learning_rate, rule) * loss), 0.0)
+        vsum = v.sum(axis=0)
+        n_ready = ready.sum(axis=0)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            v = np.where(vsum > 0, v / vsum, ready / np.maximum(n_ready, 1))
+        share = per_rule(self.share, rule)
+        mixed = (1.0 - share) * v + share * ready / np.maximum(n_ready, 1)
+        mass = np.where(mass > 0, mass, 1.0 / len(self.members))
+        new = np.where(ready, mixed * mass, w)
+        total = new.sum(axis=0)
+        new = np.where(total > 0, new / total, 1.0 / len(self.members))
+        self.w[rows] = new.T.astype(np.float32)

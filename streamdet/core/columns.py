@@ -1,0 +1,77 @@
+"""Column-wise per-series state: one array row per series, grown in place, saved as plain arrays.
+
+Every stateful part of the engine (steps, forecasters, band, confirm) subclasses
+:class:`ColumnState` and declares its arrays in ``COLUMNS``; the engine grows,
+resets, snapshots and restores them all the same way. No Python object per series.
+"""
+
+from __future__ import annotations
+
+from typing import ClassVar
+
+import numpy as np
+
+# name -> (dtype, trailing shape, fill value on reset)
+ColumnSpec = dict[str, tuple[str, tuple[int, ...], float]]
+
+
+class ColumnState:
+    """Arrays of shape ``(capacity, *tail)`` named by ``COLUMNS``; attributes of the instance."""
+
+    COLUMNS: ClassVar[ColumnSpec] = {}
+    prefix: str = ""
+
+    def __init__(self, capacity: int = 0) -> None:
+        self.capacity = 0
+        for name, (dtype, tail, fill) in self.columns().items():
+            setattr(self, name, np.full((0, *tail), fill, dtype=dtype))
+        self.grow(capacity)
+
+    def columns(self) -> ColumnSpec:
+        """The column spec; subclasses with sizes known only at run time override this."""
+        return self.COLUMNS
+
+    def grow(self, capacity: int) -> None:
+        """Make room for ``capacity`` rows, keeping existing rows; new rows hold the fill value."""
+        if capacity <= self.capacity:
+            return
+        for name, (dtype, tail, fill) in self.columns().items():
+            old = getattr(self, name)
+            new = np.full((capacity, *tail), fill, dtype=dtype)
+            new[: old.shape[0]] = old
+            setattr(self, name, new)
+        self.capacity = capacity
+
+    def reset(self, rows: np.ndarray) -> None:
+        """Forget rows (a new series takes them over)."""
+        for name, (_dtype, _tail, fill) in self.columns().items():
+            getattr(self, name)[rows] = fill
+
+    def state(self, n: int) -> dict[str, np.ndarray]:
+        """The first ``n`` rows of every column, keyed ``<prefix>.<column>``."""
+        return {f"{self.prefix}.{name}": getattr(self, name)[:n].copy() for name in self.columns()}
+
+    def load(self, arrays: dict[str, np.ndarray], n: int) -> None:
+        """Inverse of :meth:`state`; a missing or misshapen array raises ValueError naming it."""
+        self.grow(max(n, 1))
+        for name, (dtype, tail, _fill) in self.columns().items():
+            key = f"{self.prefix}.{name}"
+            if key not in arrays:
+                raise ValueError(f"snapshot lacks array {key!r}")
+            arr = arrays[key]
+            if arr.shape != (n, *tail):
+                raise ValueError(f"snapshot array {key!r} has shape {arr.shape}, expected {(n, *tail)}")
+            getattr(self, name)[:n] = arr.astype(dtype, copy=False)
+
+    def bytes_per_row(self) -> int:
+        total = 0
+        for dtype, tail, _fill in self.columns().values():
+            total += np.dtype(dtype).itemsize * int(np.prod(tail, dtype=np.int64))
+        return total
+
+
+def per_rule(table: np.ndarray, rule: np.ndarray) -> np.ndarray | float:
+    """A per-rule parameter for each row: a scalar when there is only one rule (no gather)."""
+    if table.shape[0] == 1:
+        return table[0].item()
+    return table[rule]

@@ -1,0 +1,526 @@
+"""The engine: points in, breach events out. Pure: no clock, no I/O.
+
+``Engine.ingest(batch)`` resolves series, buckets points into steps, and for every step that
+closes runs the forecasters, the blend, the band and the confirm logic over all series whose
+step closed at once (a *wave*), returning the breach events those steps decided.
+``snapshot()`` / ``restore()`` move the whole state as bytes.
+
+>>> import numpy as np
+>>> from streamdet.config import parse_config
+>>> from streamdet.core.points import PointBatch
+>>> eng = Engine(parse_config({"rules": [{"name": "all", "step": "60s", "warmup": "10 steps"}]}))
+>>> t = np.arange(0, 3600, 60.0)
+>>> y = np.where(t >= 3000, 50.0, 10.0 + np.sin(t))
+>>> events = eng.ingest(PointBatch(["q"] * len(t), t, y, {"q": ("q", ())}))
+>>> [(e.type, e.direction) for e in events]
+[('streamdet.breach.opened', 'above')]
+"""
+
+from __future__ import annotations
+
+import hashlib
+import io
+import math
+import struct
+from collections import Counter
+from dataclasses import dataclass, field
+
+import numpy as np
+import orjson
+
+from streamdet.config import Config, Rule
+from streamdet.core.band import Band
+from streamdet.core.blend import Blend
+from streamdet.core.columns import ColumnState
+from streamdet.core.confirm import Confirm
+from streamdet.core.forecast import (
+    DampedHolt,
+    HoltWinters,
+    SeasonalNaive,
+    StepContext,
+    StreamingMedian,
+)
+from streamdet.core.points import PointBatch
+from streamdet.core.series import SeriesTable
+from streamdet.core.steps import AGGREGATION_CODES, ClosedSteps, Steps, running_clock
+from streamdet.events import CLOSED, OPENED, BreachEvent, event_id
+
+SNAPSHOT_MAGIC = b"SDETSNAP"
+SNAPSHOT_VERSION = 1
+AUTO_STEP_POINTS = 6
+NICE_STEPS = (1, 2, 5, 10, 15, 20, 30, 60, 120, 300, 600, 900, 1200, 1800, 3600, 7200, 10800,
+              21600, 43200, 86400, 604800)
+DIRECTION_CODES = {"both": 0, "above": 1, "below": 2}
+
+
+def infer_step(times: list[float]) -> float | None:
+    """Spacing of a series from its first points: the median gap, snapped to a round step
+    when within 2 %. None while fewer than two distinct times are known.
+
+    >>> infer_step([0, 59.5, 120, 180.2, 240])
+    60.0
+    """
+    t = np.unique(np.asarray(times, dtype=np.float64))
+    if t.shape[0] < 2:
+        return None
+    gap = float(np.median(np.diff(t)))
+    for nice in NICE_STEPS:
+        if abs(gap - nice) <= 0.02 * nice:
+            return float(nice)
+    return round(gap, 3)
+
+
+@dataclass(slots=True)
+class StepLog:
+    """Every judged step of every series (kept only when asked for, e.g. for plots)."""
+
+    parts: list[tuple[np.ndarray, ...]] = field(default_factory=list)
+
+    def add(self, *cols: np.ndarray) -> None:
+        self.parts.append(tuple(c.copy() for c in cols))
+
+    def columns(self) -> dict[str, np.ndarray]:
+        names = ("row", "start", "observed", "expected", "lower", "upper", "judged")
+        if not self.parts:
+            return {n: np.empty(0) for n in names}
+        return {n: np.concatenate([p[i] for p in self.parts]) for i, n in enumerate(names)}
+
+
+class Engine:
+    """Online detection for every series the configured rules select."""
+
+    def __init__(self, config: Config, *, record_steps: bool = False) -> None:
+        self.config = config
+        rules = config.rules
+        f = [r.forecasters for r in rules]
+        self.table = SeriesTable(config)
+        cap = self.table.capacity
+        self.steps = Steps(cap)
+        self.forecasters = [
+            DampedHolt(cap, alpha=[x.holt.alpha for x in f], beta=[x.holt.beta for x in f],
+                       phi=[x.holt.phi for x in f]),
+            HoltWinters(cap, alpha=[x.seasonal.alpha for x in f],
+                        beta=[x.seasonal.beta for x in f], phi=[x.seasonal.phi for x in f],
+                        memory_weeks=[x.seasonal.memory_weeks for x in f]),
+            SeasonalNaive(cap, resolution=config.lag_resolution),
+            StreamingMedian(cap, rate=[x.quantile.rate for x in f]),
+        ]
+        self.members = tuple(m for fc in self.forecasters for m in fc.members)
+        enabled = {"holt": [True] * len(rules),
+                   "seasonal": [x.seasonal.enabled for x in f],
+                   "lag_day": [x.lags.enabled for x in f],
+                   "lag_week": [x.lags.enabled for x in f],
+                   "median": [x.quantile.enabled for x in f]}
+        self.member_enabled = np.array([enabled[m] for m in self.members], dtype=bool)
+        self.blend = Blend(cap, members=self.members,
+                           learning_rate=[r.blend.learning_rate for r in rules],
+                           share=[r.blend.share for r in rules])
+        self.band = Band(cap, width=[r.width for r in rules], min_width=[r.min_width for r in rules],
+                         scale_floor=[r.scale_floor for r in rules],
+                         memory_weeks=[x.seasonal.memory_weeks for x in f])
+        self.confirm = Confirm(cap)
+        self.parts: list[ColumnState] = [self.table, self.steps, *self.forecasters, self.blend,
+                                         self.band, self.confirm]
+        self.rule_agg = np.array([AGGREGATION_CODES[r.aggregation] for r in rules], np.int64)
+        self.rule_counter = np.array([r.kind == "counter" for r in rules], dtype=bool)
+        self.rule_window = np.array([r.confirm_steps for r in rules], np.int64)
+        self.rule_needed = np.array([r.confirm_needed for r in rules], np.int64)
+        self.rule_clear = np.array([r.clear_steps for r in rules], np.int64)
+        self.rule_direction = np.array([DIRECTION_CODES[r.direction] for r in rules], np.int64)
+        self.rule_width = np.array([r.width for r in rules])
+        self.clock = -math.inf
+        self.counters: Counter[str] = Counter()
+        self.pending: dict[int, list[tuple[float, float]]] = {}
+        self.next_eviction = -math.inf
+        self.log = StepLog() if record_steps else None
+
+    # ------------------------------------------------------------ series lifecycle
+
+    def _on_new(self, rows: np.ndarray) -> None:
+        cap = self.table.capacity
+        for part in self.parts:
+            part.grow(cap)
+            if part is not self.table:
+                part.reset(rows)
+        t = self.table
+        keep_rule = t.rule[rows].copy()
+        t.reset(rows)
+        t.rule[rows] = keep_rule
+        for rule_i in np.unique(keep_rule).tolist():
+            rule = self.config.rules[rule_i]
+            if rule.step is not None:
+                self._set_step(rows[keep_rule == rule_i], rule, rule.step)
+        self.counters["series_created"] += rows.shape[0]
+
+    def _set_step(self, rows: np.ndarray, rule: Rule, step: float) -> None:
+        t = self.table
+        t.step[rows] = step
+        t.lateness[rows] = min(rule.lateness, 0.99 * step)
+        t.warmup[rows] = rule.warmup.in_steps(step, minimum=20 if rule.warmup.steps is None else 1)
+        # A re-level must leave room for a breach to open and close first.
+        t.relearn[rows] = rule.relearn_after.in_steps(step, minimum=rule.confirm_steps + rule.clear_steps)
+
+    def _evict(self) -> list[BreachEvent]:
+        ttl = self.config.series.idle_ttl
+        if self.clock < self.next_eviction:
+            return []
+        self.next_eviction = self.clock + ttl / 8
+        n = self.table.n
+        live = np.array([k is not None for k in self.table.keys], dtype=bool)
+        idle = np.flatnonzero(live & (self.table.last_seen[:n] < self.clock - ttl))
+        if idle.shape[0] == 0:
+            return []
+        events = []
+        for row in idle.tolist():
+            if self.confirm.state[row] != 0:
+                events.append(self._closed_event(row, reason="series went quiet",
+                                                 start=self.confirm.last_out[row], step=None,
+                                                 values=None))
+            self.pending.pop(row, None)
+        self.table.release(idle)
+        self.counters["series_evicted"] += idle.shape[0]
+        return events
+
+    # ------------------------------------------------------------ ingest
+
+    def ingest(self, batch: PointBatch) -> list[BreachEvent]:
+        """Take a batch of points (in arrival order); return the events its closed steps decided."""
+        n_in = len(batch)
+        self.counters["points_in"] += n_in
+        if n_in == 0:
+            return []
+        rows, no_rule, over_cap = self.table.resolve(batch, self._on_new)
+        self.counters["points_no_rule"] += no_rule
+        self.counters["points_series_limit"] += over_cap
+        ok = rows >= 0
+        rows, t, v = rows[ok], batch.time[ok], batch.value[ok]
+        if rows.shape[0] == 0:
+            return []
+        tab = self.table
+        np.maximum.at(tab.last_seen, rows, t)
+        seen_clock = running_clock(self.clock, t)
+        self.clock = max(self.clock, float(t.max()))
+        step = tab.step[rows]
+        unknown = np.isnan(step)
+        released = self._buffer_auto(rows[unknown], t[unknown], v[unknown]) if unknown.any() else None
+        known = ~unknown
+        rows, t, v, step, seen_clock = rows[known], t[known], v[known], step[known], seen_clock[known]
+        k = np.floor(t / step).astype(np.int64)
+        late = (k + 1) * step + tab.lateness[rows] <= seen_clock
+        n_late = int(late.sum())
+        if n_late:
+            self.counters["points_late"] += n_late
+            keep = ~late
+            rows, t, v = rows[keep], t[keep], v[keep]
+        seq = np.arange(rows.shape[0], dtype=np.int64)
+        if released is not None:
+            rr, rt, rv = released
+            rows = np.concatenate([rr, rows])
+            t = np.concatenate([rt, t])
+            v = np.concatenate([rv, v])
+            seq = np.concatenate([np.arange(rr.shape[0]) - rr.shape[0], seq])
+        counter = self.rule_counter[tab.rule[rows]]
+        if counter.any():
+            rows, t, v, seq = self._counters_to_rates(rows, t, v, seq, counter)
+        self.counters["points_accepted"] += rows.shape[0]
+        k = np.floor(t / tab.step[rows]).astype(np.int64)
+        closed = self.steps.merge(rows, k, t, v, seq, self._agg_of, tab.step.__getitem__,
+                                  tab.lateness.__getitem__, self.clock)
+        return self._judge_all(closed) + self._evict()
+
+    def advance(self, clock: float) -> list[BreachEvent]:
+        """Move event time forward without points (an idle input): closes steps now due."""
+        if clock <= self.clock:
+            return []
+        self.clock = clock
+        return self._judge_all(ClosedSteps.empty()) + self._evict()
+
+    def finish(self) -> list[BreachEvent]:
+        """Close every open step (end of a replay). The engine can take more points after."""
+        saved = self.clock
+        self.clock = math.inf
+        try:
+            return self._judge_all(ClosedSteps.empty())
+        finally:
+            self.clock = saved
+
+    def _agg_of(self, rows: np.ndarray) -> np.ndarray:
+        return self.rule_agg[self.table.rule[rows]]
+
+    def _counters_to_rates(self, rows, t, v, seq, counter):
+        gauge = ~counter
+        cr, ct, cv, dropped = self.steps.counter_rates(rows[counter], t[counter], v[counter])
+        self.counters["counter_samples_dropped"] += int(dropped.sum())
+        self.counters["counter_samples_first"] += int(counter.sum() - cr.shape[0] - dropped.sum())
+        return (np.concatenate([rows[gauge], cr]), np.concatenate([t[gauge], ct]),
+                np.concatenate([v[gauge], cv]),
+                np.concatenate([seq[gauge], np.arange(cr.shape[0]) + 2**40]))
+
+    def _buffer_auto(self, rows, t, v):
+        """Hold points of series whose step is still being inferred; release them once known."""
+        self.counters["points_held_for_step"] += rows.shape[0]
+        ready: list[int] = []
+        for row, ti, vi in zip(rows.tolist(), t.tolist(), v.tolist(), strict=True):
+            buf = self.pending.setdefault(row, [])
+            buf.append((ti, vi))
+            if len(buf) == AUTO_STEP_POINTS:
+                ready.append(row)
+        out_r, out_t, out_v = [], [], []
+        for row in ready:
+            buf = self.pending[row]
+            step = infer_step([p[0] for p in buf])
+            if step is None:
+                continue
+            rule = self.config.rules[int(self.table.rule[row])]
+            self._set_step(np.array([row]), rule, step)
+            del self.pending[row]
+            for ti, vi in sorted(buf, key=lambda p: p[0]):
+                out_r.append(row)
+                out_t.append(ti)
+                out_v.append(vi)
+        if not out_r:
+            return None
+        return (np.asarray(out_r, np.int64), np.asarray(out_t), np.asarray(out_v))
+
+    # ------------------------------------------------------------ judging closed steps
+
+    def _judge_all(self, closed: ClosedSteps) -> list[BreachEvent]:
+        tab = self.table
+        n = tab.n
+        due = self.steps.due(self.clock, n, self.rule_agg[np.maximum(tab.rule[:n], 0)],
+                             np.nan_to_num(tab.step[:n], nan=np.inf), tab.lateness[:n])
+        if len(due):
+            rows = np.concatenate([closed.rows, due.rows])
+            k = np.concatenate([closed.k, due.k])
+            val = np.concatenate([closed.value, due.value])
+            order = np.lexsort((k, rows))
+            closed = ClosedSteps(rows[order], k[order], val[order])
+        if not len(closed):
+            return []
+        self.counters["steps_closed"] += len(closed)
+        rows = closed.rows
+        new_row = np.ones(rows.shape[0], dtype=bool)
+        new_row[1:] = rows[1:] != rows[:-1]
+        group_start = np.maximum.accumulate(np.where(new_row, np.arange(rows.shape[0]), 0))
+        rank = np.arange(rows.shape[0]) - group_start
+        events: list[BreachEvent] = []
+        if rank.max() == 0:
+            events.extend(self._judge(rows, closed.k, closed.value))
+            return events
+        order = np.argsort(rank, kind="stable")
+        bounds = np.searchsorted(rank[order], np.arange(rank.max() + 2))
+        for w in range(rank.max() + 1):
+            sel = order[bounds[w]:bounds[w + 1]]
+            events.extend(self._judge(rows[sel], closed.k[sel], closed.value[sel]))
+        return events
+
+    def _judge(self, rows: np.ndarray, k: np.ndarray, y: np.ndarray) -> list[BreachEvent]:
+        """One wave: at most one closed step per row, all judged together."""
+        tab = self.table
+        rule = tab.rule[rows]
+        step = tab.step[rows]
+        start = k * step
+        first = tab.first[rows]
+        first = np.where(np.isnan(first), start, first)
+        tab.first[rows] = first
+        ctx = StepContext.build(rows, rule, start, step, start - first)
+        outs = [fc.predict(ctx) for fc in self.forecasters]
+        preds = np.concatenate([o[0] for o in outs])
+        ready = np.concatenate([o[1] for o in outs]) & self.member_enabled[:, rule]
+        centre, weights, any_ready = self.blend.combine(rows, preds, ready)
+        half, scale = self.band.half_width(ctx, centre)
+        learning = (self.band.n[rows] < tab.warmup[rows]) | ~any_ready
+        judged = ~learning
+        resid = y - centre
+        side = np.where(resid > half, 1, np.where(resid < -half, -1, 0)) * judged
+        direction = self.rule_direction[rule]
+        counted = ((side == 1) & (direction != 2)) | ((side == -1) & (direction != 1))
+        with np.errstate(invalid="ignore", divide="ignore"):
+            score = np.where(scale > 0, resid / scale, np.sign(resid) * np.inf)
+        lower, upper = centre - half, centre + half
+        trans = self.confirm.step(rows, judged, side, counted, score, resid, start, step,
+                                  self.rule_window[rule], self.rule_needed[rule],
+                                  self.rule_clear[rule], tab.relearn[rows])
+        if self.log is not None:
+            self.log.add(rows, start, y, np.where(any_ready, centre, np.nan),
+                         np.where(judged, lower, np.nan), np.where(judged, upper, np.nan), judged)
+        events: list[BreachEvent] = []
+        if trans.opened.any() or trans.closed.any():
+            values = (start, step, y, centre, lower, upper, score, weights)
+            for i in np.flatnonzero(trans.opened | trans.closed).tolist():
+                if trans.opened[i]:
+                    events.append(self._opened_event(int(rows[i]), i, values))
+                else:
+                    events.append(self._closed_event(int(rows[i]), reason="back inside the band",
+                                                     start=float(start[i]), step=float(step[i]),
+                                                     values=values, i=i))
+            self.counters["events_opened"] += int(trans.opened.sum())
+            self.counters["events_closed"] += int(trans.closed.sum())
+        # Learn from the step, with the value clipped to the band once the band is trusted.
+        y_fit = np.where(judged, np.clip(y, lower, upper), y)
+        loss_scale = np.where(scale > 0, scale, np.maximum(np.abs(centre), 1.0))
+        self.blend.update(rows, rule, preds, ready, y_fit, loss_scale)
+        for fc in self.forecasters:
+            fc.update(ctx, y_fit)
+        has_centre = any_ready
+        if has_centre.all():
+            self.band.update(ctx, y_fit - centre)
+        elif has_centre.any():
+            sub = StepContext(rows[has_centre], rule[has_centre], start[has_centre],
+                              step[has_centre], ctx.age[has_centre],
+                              {p: b[has_centre] for p, b in ctx.buckets.items()})
+            self.band.update(sub, (y_fit - centre)[has_centre])
+        if trans.relearn.any():
+            rr = rows[trans.relearn]
+            delta = trans.relearn_delta[trans.relearn]
+            for fc in self.forecasters:
+                fc.shift(rr, delta)
+            self.counters["relearns"] += rr.shape[0]
+        return events
+
+    # ------------------------------------------------------------ events
+
+    def _base(self, row: int, i: int, values) -> dict:
+        start, step, y, centre, lower, upper, score, weights = values
+        rule = self.config.rules[int(self.table.rule[row])]
+        metric, labels = self.table.meta[row]
+        w = {m: float(weights[j, i]) for j, m in enumerate(self.members) if weights[j, i] > 0}
+        return dict(series=self.table.keys[row], metric=metric, labels=dict(labels),
+                    rule=rule.name, step_start=float(start[i]),
+                    step_end=float(start[i] + step[i]), observed=float(y[i]),
+                    expected=float(centre[i]), lower=float(lower[i]), upper=float(upper[i]),
+                    score=float(score[i]), width=rule.width, weights=w)
+
+    def _opened_event(self, row: int, i: int, values) -> BreachEvent:
+        c = self.confirm
+        return BreachEvent(type=OPENED, direction="above" if c.state[row] > 0 else "below",
+                           started=float(c.since[row]), **self._base(row, i, values))
+
+    def _closed_event(self, row: int, *, reason: str, start: float, step: float | None,
+                      values, i: int = 0) -> BreachEvent:
+        c = self.confirm
+        rule = self.config.rules[int(self.table.rule[row])]
+        key = self.table.keys[row]
+        if values is None:  # evicted: no step of its own; report the last known outside step
+            metric, labels = self.table.meta[row]
+            step = float(self.table.step[row])
+            base = dict(series=key, metric=metric, labels=dict(labels), rule=rule.name,
+                        step_start=float(c.last_out[row]) - step, step_end=float(c.last_out[row]),
+                        observed=math.nan, expected=math.nan, lower=math.nan, upper=math.nan,
+                        score=math.nan, width=rule.width, weights={})
+            c.state[row] = 0
+        else:
+            base = self._base(row, i, values)
+        worst = float(c.worst[row])
+        return BreachEvent(
+            type=CLOSED, direction="above" if worst >= 0 else "below",
+            started=float(c.since[row]), duration=float(c.last_out[row] - c.since[row]),
+            worst_score=worst, reason=reason,
+            opened_id=event_id(OPENED, rule.name, key, float(c.decided[row])), **base)
+
+    # ------------------------------------------------------------ introspection
+
+    def stats(self) -> dict[str, int]:
+        """Gauges about the current state (series, learning series, open breaches, bytes)."""
+        n = self.table.n
+        live = np.array([k is not None for k in self.table.keys], dtype=bool)
+        learning = live & (self.band.n[:n] < self.table.warmup[:n])
+        return {
+            "series_active": int(live.sum()),
+            "series_learning": int(learning.sum()) + len(self.pending),
+            "breaches_open": int((live & (self.confirm.state[:n] != 0)).sum()),
+            "state_bytes": self.state_bytes_per_series() * int(live.sum()),
+        }
+
+    def state_bytes_per_series(self) -> int:
+        """Bytes of array state one series occupies (all parts, excluding key strings)."""
+        return sum(p.bytes_per_row() for p in self.parts)
+
+    def is_learning(self, key: str) -> bool:
+        row = self.table.index.get(key)
+        if row is None:
+            return True
+        return bool(self.band.n[row] < self.table.warmup[row]) or row in self.pending
+
+    # ------------------------------------------------------------ snapshots
+
+    def snapshot(self) -> bytes:
+        """All state as bytes: a JSON header and the arrays (numpy .npz, no pickle), checksummed."""
+        n = self.table.n
+        arrays: dict[str, np.ndarray] = {}
+        for part in self.parts:
+            arrays.update(part.state(n))
+        buf = io.BytesIO()
+        np.savez(buf, **arrays)
+        body = buf.getvalue()
+        header = {
+            "version": SNAPSHOT_VERSION,
+            "rows": n,
+            "rules": [r.name for r in self.config.rules],
+            "lag_resolution": self.config.lag_resolution,
+            "keys": self.table.keys,
+            "meta": [None if m is None else [m[0], [list(x) for x in m[1]]] for m in self.table.meta],
+            "free": self.table.free,
+            "clock": None if math.isinf(self.clock) else self.clock,
+            "next_eviction": None if math.isinf(self.next_eviction) else self.next_eviction,
+            "counters": dict(self.counters),
+            "pending": {str(k): v for k, v in self.pending.items()},
+            "sha256": hashlib.sha256(body).hexdigest(),
+        }
+        head = orjson.dumps(header)
+        return SNAPSHOT_MAGIC + struct.pack(">II", SNAPSHOT_VERSION, len(head)) + head + body
+
+    @classmethod
+    def restore(cls, config: Config, data: bytes, *, record_steps: bool = False) -> Engine:
+        """Inverse of :meth:`snapshot`; raises SnapshotError on anything damaged or incompatible."""
+        if not data.startswith(SNAPSHOT_MAGIC) or len(data) < len(SNAPSHOT_MAGIC) + 8:
+            raise SnapshotError("not a streamdet snapshot (bad magic)")
+        version, head_len = struct.unpack_from(">II", data, len(SNAPSHOT_MAGIC))
+        if version != SNAPSHOT_VERSION:
+            raise SnapshotError(f"snapshot version {version}, this build reads {SNAPSHOT_VERSION}")
+        off = len(SNAPSHOT_MAGIC) + 8
+        try:
+            header = orjson.loads(data[off:off + head_len])
+        except orjson.JSONDecodeError as exc:
+            raise SnapshotError(f"snapshot header is damaged ({exc})") from None
+        body = data[off + head_len:]
+        if hashlib.sha256(body).hexdigest() != header.get("sha256"):
+            raise SnapshotError("snapshot checksum mismatch (truncated or damaged)")
+        if header["lag_resolution"] != config.lag_resolution:
+            raise SnapshotError("snapshot was taken with a different engine.lag_resolution")
+        eng = cls(config, record_steps=record_steps)
+        n = int(header["rows"])
+        with np.load(io.BytesIO(body), allow_pickle=False) as npz:
+            arrays = {k: npz[k] for k in npz.files}
+        try:
+            for part in eng.parts:
+                part.load(arrays, n)
+        except ValueError as exc:
+            raise SnapshotError(str(exc)) from None
+        tab = eng.table
+        tab.keys = header["keys"]
+        tab.meta = [None if m is None else (m[0], tuple(tuple(x) for x in m[1]))
+                    for m in header["meta"]]
+        tab.free = list(header["free"])
+        tab.index = {k: i for i, k in enumerate(tab.keys) if k is not None}
+        # Rules are matched by name: a series whose rule is gone is dropped (counted).
+        old_names = header["rules"]
+        new_index = {r.name: i for i, r in enumerate(config.rules)}
+        remap = np.array([new_index.get(name, -1) for name in old_names] + [-1], np.int64)
+        live = np.flatnonzero(tab.rule[:n] >= 0)
+        tab.rule[live] = remap[tab.rule[live]]
+        gone = np.array([r for r in live.tolist() if tab.rule[r] < 0 and tab.keys[r] is not None],
+                        np.int64)
+        eng.clock = -math.inf if header["clock"] is None else float(header["clock"])
+        eng.next_eviction = (-math.inf if header["next_eviction"] is None
+                             else float(header["next_eviction"]))
+        eng.counters = Counter(header["counters"])
+        eng.pending = {int(k): [tuple(p) for p in v] for k, v in header["pending"].items()}
+        if gone.shape[0]:
+            tab.release(gone)
+            eng.counters["series_dropped_rule_removed"] += gone.shape[0]
+        return eng
+
+
+class SnapshotError(ValueError):
+    """A snapshot that cannot be restored: damaged, truncated or from an incompatible build."""

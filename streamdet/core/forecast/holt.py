@@ -1,0 +1,70 @@
+"""Holt's linear exponential smoothing with a damped trend, vectorized over series.
+
+Recursions as in Hyndman & Athanasopoulos, *Forecasting: Principles and Practice*
+(section 8.2): ``l = a*y + (1-a)(l + phi*b)``, ``b = beta*(l - l_prev) + (1-beta)*phi*b``,
+forecast ``l + phi*b``. Early on the level learns as a running mean
+(``a = max(alpha, 1/(n+1))``); after a gap of ``h`` steps the damped trend is summed over ``h``.
+
+>>> import numpy as np
+>>> from streamdet.core.forecast.base import StepContext
+>>> f = DampedHolt(1, alpha=0.5, beta=0.1, phi=0.9)
+>>> for ctx, y in zip(StepContext.sequence(4), [10.0, 12.0, 14.0, 16.0]):
+...     f.update(ctx, np.array([y]))
+>>> round(float(f.level[0]), 3)
+14.5
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from typing import ClassVar
+
+import numpy as np
+
+from streamdet.core.columns import ColumnSpec, per_rule
+from streamdet.core.forecast.base import Forecaster, StepContext, damped_sum, horizon
+
+
+class DampedHolt(Forecaster):
+    members = ("holt",)
+    prefix = "holt"
+    COLUMNS: ClassVar[ColumnSpec] = {
+        "level": ("f8", (), 0.0),
+        "trend": ("f8", (), 0.0),
+        "n": ("i4", (), 0),
+        "last": ("f8", (), 0.0),
+    }
+    warmup = 3
+
+    def __init__(self, capacity: int = 0, *, alpha: float | Sequence[float] = 0.1,
+                 beta: float | Sequence[float] = 0.01, phi: float | Sequence[float] = 0.9) -> None:
+        super().__init__(capacity)
+        self.alpha = np.atleast_1d(np.asarray(alpha, dtype=np.float64))
+        self.beta = np.atleast_1d(np.asarray(beta, dtype=np.float64))
+        self.phi = np.atleast_1d(np.asarray(phi, dtype=np.float64))
+
+    def predict(self, ctx: StepContext) -> tuple[np.ndarray, np.ndarray]:
+        r = ctx.rows
+        n = self.n[r]
+        h = horizon(self.last[r], n, ctx)
+        yhat = self.level[r] + damped_sum(per_rule(self.phi, ctx.rule), h) * self.trend[r]
+        return yhat[None, :], (n >= self.warmup)[None, :]
+
+    def update(self, ctx: StepContext, y: np.ndarray) -> None:
+        r = ctx.rows
+        n = self.n[r]
+        level, trend = self.level[r], self.trend[r]
+        phi = per_rule(self.phi, ctx.rule)
+        beta = per_rule(self.beta, ctx.rule)
+        h = horizon(self.last[r], n, ctx)
+        alpha = np.maximum(per_rule(self.alpha, ctx.rule), 1.0 / (n + 1.0))
+        new_level = alpha * y + (1.0 - alpha) * (level + damped_sum(phi, h) * trend)
+        new_trend = beta * (new_level - level) / h + (1.0 - beta) * (phi**h) * trend
+        first = n == 0
+        self.level[r] = np.where(first, y, new_level)
+        self.trend[r] = np.where(first, 0.0, new_trend)
+        self.n[r] = np.minimum(n + 1, 2**31 - 2)
+        self.last[r] = ctx.start
+
+    def shift(self, rows: np.ndarray, delta: np.ndarray) -> None:
+        self.level[rows] += delta

@@ -1,0 +1,126 @@
+"""Additive Holt-Winters over hour-of-week buckets, with an hour-of-day profile as fallback.
+
+Recursions as in Hyndman & Athanasopoulos, *Forecasting: Principles and Practice*
+(section 8.3, additive, damped): ``l = a(y - s) + (1-a)(l + phi*b)``,
+``b = beta(l - l_prev) + (1-beta)phi*b``, ``s = g(y - l_prev - phi*b) + (1-g)s``.
+Profiles are tried in order (hour of week, then hour of day); the first whose bucket has
+been seen, and whose cycle the series has lived through once, serves. Each profile's rate
+``g`` gives it an effective memory of ``memory_weeks`` (about six weeks by default), and
+learns as a running mean until that many visits have been seen.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+
+import numpy as np
+
+from streamdet.core.columns import ColumnSpec, per_rule
+from streamdet.core.forecast.base import (
+    HOUR_OF_DAY,
+    HOUR_OF_WEEK,
+    WEEK,
+    Forecaster,
+    Profile,
+    StepContext,
+    damped_sum,
+    horizon,
+    visits,
+)
+
+
+class HoltWinters(Forecaster):
+    members = ("seasonal",)
+    prefix = "seasonal"
+    warmup = 3
+
+    def __init__(
+        self,
+        capacity: int = 0,
+        *,
+        profiles: Sequence[Profile] = (HOUR_OF_WEEK, HOUR_OF_DAY),
+        alpha: float | Sequence[float] = 0.05,
+        beta: float | Sequence[float] = 0.005,
+        phi: float | Sequence[float] = 0.9,
+        memory_weeks: float | Sequence[float] = 6.0,
+        gamma: float | None = None,
+    ) -> None:
+        self.profiles = tuple(profiles)
+        if any(p.cycle is None for p in self.profiles) and gamma is None:
+            raise ValueError("a profile without a cycle needs a fixed gamma")
+        super().__init__(capacity)
+        self.alpha = np.atleast_1d(np.asarray(alpha, dtype=np.float64))
+        self.beta = np.atleast_1d(np.asarray(beta, dtype=np.float64))
+        self.phi = np.atleast_1d(np.asarray(phi, dtype=np.float64))
+        self.memory_weeks = np.atleast_1d(np.asarray(memory_weeks, dtype=np.float64))
+        self.gamma = gamma
+
+    def columns(self) -> ColumnSpec:
+        spec: ColumnSpec = {
+            "level": ("f8", (), 0.0),
+            "trend": ("f8", (), 0.0),
+            "n": ("i4", (), 0),
+            "last": ("f8", (), 0.0),
+        }
+        for p in self.profiles:
+            spec[f"s{p.period}"] = ("f4", (p.period,), np.nan)
+        return spec
+
+    def _rate(self, ctx: StepContext, p: Profile) -> np.ndarray | float:
+        if self.gamma is not None:
+            return self.gamma
+        per_visit = np.maximum((p.cycle / p.period) / ctx.step, 1.0)  # visits per bucket per cycle
+        memory_visits = per_rule(self.memory_weeks, ctx.rule) * (WEEK / p.cycle) * per_visit
+        gamma = -np.expm1(-1.0 / memory_visits)
+        return np.maximum(gamma, 1.0 / (visits(ctx, p) + 1.0))
+
+    def _served(self, ctx: StepContext) -> tuple[np.ndarray, np.ndarray]:
+        """Seasonal term per row from the first usable profile, and whether one was usable."""
+        r = ctx.rows
+        out = np.zeros(r.shape[0])
+        found = np.zeros(r.shape[0], dtype=bool)
+        for p in self.profiles:
+            s = getattr(self, f"s{p.period}")[r, ctx.buckets[p.period]]
+            ok = ~np.isnan(s) & ~found
+            if p.cycle is not None:
+                ok &= (ctx.age >= p.cycle) & (ctx.step <= p.bucket_seconds)
+            out = np.where(ok, s, out)
+            found |= ok
+        return out, found
+
+    def predict(self, ctx: StepContext) -> tuple[np.ndarray, np.ndarray]:
+        r = ctx.rows
+        n = self.n[r]
+        h = horizon(self.last[r], n, ctx)
+        season, found = self._served(ctx)
+        yhat = self.level[r] + damped_sum(per_rule(self.phi, ctx.rule), h) * self.trend[r] + season
+        return yhat[None, :], (found & (n >= self.warmup))[None, :]
+
+    def update(self, ctx: StepContext, y: np.ndarray) -> None:
+        r = ctx.rows
+        n = self.n[r]
+        level, trend = self.level[r], self.trend[r]
+        phi = per_rule(self.phi, ctx.rule)
+        beta = per_rule(self.beta, ctx.rule)
+        h = horizon(self.last[r], n, ctx)
+        first = n == 0
+        base = np.where(first, y, level + damped_sum(phi, h) * trend)
+        season, found = self._served(ctx)
+        alpha = np.maximum(per_rule(self.alpha, ctx.rule), 1.0 / (n + 1.0))
+        new_level = alpha * (y - season) + (1.0 - alpha) * base
+        new_trend = beta * (new_level - level) / h + (1.0 - beta) * (phi**h) * trend
+        resid = y - base  # y minus the deseasonalised one-step forecast
+        for p in self.profiles:
+            arr = getattr(self, f"s{p.period}")
+            b = ctx.buckets[p.period]
+            old = arr[r, b].astype(np.float64)
+            start = np.where(np.isnan(old), np.where(found, season, resid), old)
+            g = self._rate(ctx, p)
+            arr[r, b] = g * resid + (1.0 - g) * start
+        self.level[r] = np.where(first, y, new_level)
+        self.trend[r] = np.where(first, 0.0, new_trend)
+        self.n[r] = np.minimum(n + 1, 2**31 - 2)
+        self.last[r] = ctx.start
+
+    def shift(self, rows: np.ndarray, delta: np.ndarray) -> None:
+        self.level[rows] += delta

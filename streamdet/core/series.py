@@ -1,0 +1,114 @@
+"""The series table: series key -> row, the rule each series follows, caps and idle eviction.
+
+Rows are reused after eviction; every other part of the engine keeps its state in arrays
+indexed by these rows. Keys of series that no rule selects are remembered (bounded) so the
+rule globs are not re-run for every point.
+"""
+
+from __future__ import annotations
+
+from typing import ClassVar
+
+import numpy as np
+
+from streamdet.config import Config
+from streamdet.core.columns import ColumnSpec, ColumnState
+from streamdet.core.points import Labels, PointBatch
+
+UNMATCHED_MEMORY = 100_000
+
+
+class SeriesTable(ColumnState):
+    prefix = "series"
+    COLUMNS: ClassVar[ColumnSpec] = {
+        "rule": ("i4", (), -1),
+        "step": ("f8", (), np.nan),  # seconds; NaN while an "auto" step is being inferred
+        "lateness": ("f8", (), 0.0),
+        "warmup": ("i4", (), 0),  # steps
+        "relearn": ("i4", (), 0),  # steps
+        "first": ("f8", (), np.nan),  # start of the first closed step
+        "last_seen": ("f8", (), -np.inf),  # latest point time
+    }
+
+    def __init__(self, config: Config, capacity: int = 1024) -> None:
+        super().__init__(capacity)
+        self.config = config
+        self.index: dict[str, int] = {}
+        self.keys: list[str | None] = []
+        self.meta: list[tuple[str, Labels] | None] = []
+        self.free: list[int] = []
+        self.unmatched: set[str] = set()
+
+    @property
+    def n(self) -> int:
+        """Rows in use or freed (the high-water mark); arrays beyond it are untouched."""
+        return len(self.keys)
+
+    @property
+    def active(self) -> int:
+        return len(self.index)
+
+    def resolve(self, batch: PointBatch, on_new) -> tuple[np.ndarray, int, int]:
+        """Row per point (-1 where dropped), points with no rule, points over ``max_series``.
+
+        ``on_new(rows)`` is called for rows created here, before they are used.
+        """
+        index = self.index
+        rows = np.fromiter((index.get(k, -1) for k in batch.keys), dtype=np.int64,
+                           count=len(batch.keys))
+        no_rule = over_cap = 0
+        if (rows < 0).any():
+            created: list[int] = []
+            missing = np.flatnonzero(rows < 0)
+            for i in missing.tolist():
+                key = batch.keys[i]
+                row = index.get(key, -1)
+                if row < 0 and key not in self.unmatched:
+                    row = self._create(key, batch.series[key], created)
+                if row == -1:
+                    no_rule += 1
+                elif row == -2:
+                    over_cap += 1
+                    row = -1
+                rows[i] = row
+            if created:
+                on_new(np.asarray(created, dtype=np.int64))
+        return rows, no_rule, over_cap
+
+    def _create(self, key: str, meta: tuple[str, Labels], created: list[int]) -> int:
+        metric, labels = meta
+        rule = self.config.rule_for(metric, dict(labels))
+        if rule is None:
+            if len(self.unmatched) >= UNMATCHED_MEMORY:
+                self.unmatched.clear()
+            self.unmatched.add(key)
+            return -1
+        if len(self.index) >= self.config.series.max_series:
+            return -2
+        if self.free:
+            row = self.free.pop()
+            self.keys[row] = key
+            self.meta[row] = meta
+        else:
+            row = len(self.keys)
+            if row >= self.capacity:
+                self.grow(max(2 * self.capacity, 1024))
+            self.keys.append(key)
+            self.meta.append(meta)
+        self.index[key] = row
+        created.append(row)
+        self.rule[row] = rule
+        return row
+
+    def release(self, rows: np.ndarray) -> None:
+        for row in rows.tolist():
+            key = self.keys[row]
+            if key is not None:
+                del self.index[key]
+            self.keys[row] = None
+            self.meta[row] = None
+            self.free.append(row)
+
+    def labels_of(self, row: int) -> dict[str, str]:
+        meta = self.meta[row]
+        return dict(meta[1]) if meta else {}
