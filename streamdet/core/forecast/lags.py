@@ -24,8 +24,8 @@ class SeasonalNaive(Forecaster):
         if resolution <= 0 or DAY % resolution:
             raise ValueError(f"lag resolution must divide one day evenly, got {resolution:g} s")
         self.resolution = float(resolution)
-        self.cells = int(round(WEEK / resolution))
-        self.day_cells = int(round(DAY / resolution))
+        self.cells = round(WEEK / resolution)
+        self.day_cells = round(DAY / resolution)
         super().__init__(capacity)
 
     def columns(self) -> ColumnSpec:
@@ -42,7 +42,7 @@ class SeasonalNaive(Forecaster):
         ring_val = self.ring[r, x % self.cells].astype(np.float64)
         with np.errstate(invalid="ignore", divide="ignore"):
             cur_val = self.csum[r] / self.ccount[r]
-        in_ring = (x < cur) & (x > cur - self.cells)
+        in_ring = (x < cur) & (x >= cur - self.cells)
         return np.where(x == cur, cur_val, np.where(in_ring, ring_val, np.nan))
 
     def predict(self, ctx: StepContext) -> tuple[np.ndarray, np.ndarray]:
