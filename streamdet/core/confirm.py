@@ -79,10 +79,13 @@ class Confirm(ColumnState):
         # Relearn tracking: a lasting run outside on one side.
         run = self.run[r]
         offset = self.run_offset[r]
-        same = (side != 0) & (np.sign(run) == side)
+        # A run starts at a step outside the band and goes on while steps stay on that side
+        # of the centre (inside the band or not); crossing the centre ends it.
+        run_side = np.sign(run)
+        same = (run != 0) & (np.sign(resid) == run_side)
         fresh = (side != 0) & ~same
-        crossed = (side == 0) & (run != 0) & (np.sign(resid) != np.sign(run))
-        run = np.where(judged & same, run + side, run)
+        crossed = (run != 0) & ~same & (side == 0)
+        run = np.where(judged & same, run + run_side, run)
         offset = np.where(judged & same, (1 - RUN_SMOOTHING) * offset + RUN_SMOOTHING * resid, offset)
         run = np.where(judged & fresh, side, run)
         offset = np.where(judged & fresh, resid, offset)

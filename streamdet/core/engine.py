@@ -51,6 +51,7 @@ AUTO_STEP_POINTS = 6
 NICE_STEPS = (1, 2, 5, 10, 15, 20, 30, 60, 120, 300, 600, 900, 1200, 1800, 3600, 7200, 10800,
               21600, 43200, 86400, 604800)
 DIRECTION_CODES = {"both": 0, "above": 1, "below": 2}
+SHAPE_CLIP = 5.0  # seasonal profiles learn from values clipped at this many band half-widths
 
 
 def infer_step(times: list[float]) -> float | None:
@@ -358,8 +359,10 @@ class Engine:
             self.counters["events_closed"] += int(trans.closed.sum())
         # Learn from the step, with the value clipped to the band once the band is trusted.
         y_fit = np.where(judged, np.clip(y, lower, upper), y)
+        ctx.shape_y = np.where(judged, np.clip(y, centre - SHAPE_CLIP * half, centre + SHAPE_CLIP * half), y)
         loss_scale = np.where(scale > 0, scale, np.maximum(np.abs(centre), 1.0))
-        self.blend.update(rows, rule, preds, ready, y_fit, loss_scale)
+        # Members are judged on what really happened (the loss cap bounds a spike's effect).
+        self.blend.update(rows, rule, preds, ready, y, loss_scale)
         for fc in self.forecasters:
             fc.update(ctx, y_fit)
         has_centre = any_ready

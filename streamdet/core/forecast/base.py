@@ -57,6 +57,9 @@ class StepContext:
     step: np.ndarray  # step length, seconds
     age: np.ndarray  # start minus the series' first step start, seconds
     buckets: dict[int, np.ndarray] = field(default_factory=dict)
+    # The value seasonal profiles learn from: clipped more loosely than the level's input, so a
+    # shape that recurs is learnt in full while one spike moves a bucket by a bounded amount.
+    shape_y: np.ndarray | None = None
 
     @classmethod
     def build(cls, rows, rule, start, step, age) -> StepContext:

@@ -109,7 +109,8 @@ class HoltWinters(Forecaster):
         alpha = np.maximum(per_rule(self.alpha, ctx.rule), 1.0 / (n + 1.0))
         new_level = alpha * (y - season) + (1.0 - alpha) * base
         new_trend = beta * (new_level - level) / h + (1.0 - beta) * (phi**h) * trend
-        resid = y - base  # y minus the deseasonalised one-step forecast
+        shape_y = y if ctx.shape_y is None else ctx.shape_y
+        resid = shape_y - base  # y minus the deseasonalised one-step forecast
         for p in self.profiles:
             arr = getattr(self, f"s{p.period}")
             b = ctx.buckets[p.period]
