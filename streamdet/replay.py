@@ -103,10 +103,10 @@ def write_events(events: Sequence[BreachEvent], out: IO[bytes], source: str = "s
 class ProgressBar:
     """A one-line progress bar on a terminal; silent when the stream is not a TTY."""
 
-    def __init__(self, stream: IO[str] = sys.stderr, width: int = 30) -> None:
-        self.stream = stream
+    def __init__(self, stream: IO[str] | None = None, width: int = 30) -> None:
+        self.stream = stream if stream is not None else sys.stderr
         self.width = width
-        self.enabled = stream.isatty()
+        self.enabled = self.stream.isatty()
 
     def __call__(self, done: int, total: int) -> None:
         if not self.enabled or total == 0:

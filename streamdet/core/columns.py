@@ -24,6 +24,8 @@ class ColumnState:
     def __init__(self, capacity: int = 0) -> None:
         self.capacity = 0
         for name, (dtype, tail, fill) in self.columns().items():
+            if hasattr(type(self), name):
+                raise TypeError(f"column {name!r} of {type(self).__name__} would hide a method")
             setattr(self, name, np.full((0, *tail), fill, dtype=dtype))
         self.grow(capacity)
 

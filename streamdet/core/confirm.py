@@ -31,7 +31,7 @@ class Confirm(ColumnState):
     prefix = "confirm"
     COLUMNS: ClassVar[ColumnSpec] = {
         "bits": ("u4", (), 0),  # outside-in-direction flags of the last 32 judged steps
-        "state": ("i1", (), 0),  # 0 closed, +1 open above, -1 open below
+        "status": ("i1", (), 0),  # 0 closed, +1 open above, -1 open below
         "clear_run": ("i4", (), 0),
         "since": ("f8", (), 0.0),  # start of the first outside step of the breach
         "decided": ("f8", (), 0.0),  # start of the step that opened it
@@ -50,7 +50,7 @@ class Confirm(ColumnState):
         mask = (np.uint64(1) << window.astype(np.uint64)) - np.uint64(1)
         new_bits = ((bits << np.uint64(1)) | counted.astype(np.uint64)) & mask
         bits = np.where(judged, new_bits, bits)
-        state = self.state[r]
+        state = self.status[r]
         was_open = state != 0
         n_out = np.bitwise_count(bits)
         opened = judged & ~was_open & (n_out >= needed)
@@ -72,7 +72,7 @@ class Confirm(ColumnState):
         bits = np.where(closed, 0, bits)
         clear_run = np.where(closed, 0, clear_run)
         self.bits[r] = bits.astype(np.uint32)
-        self.state[r] = state.astype(np.int8)
+        self.status[r] = state.astype(np.int8)
         self.clear_run[r] = clear_run
         self.worst[r] = worst.astype(np.float32)
         self.last_out[r] = last_out

@@ -173,7 +173,7 @@ class Engine:
             return []
         events = []
         for row in idle.tolist():
-            if self.confirm.state[row] != 0:
+            if self.confirm.status[row] != 0:
                 events.append(self._closed_event(row, reason="series went quiet",
                                                  start=self.confirm.last_out[row], step=None,
                                                  values=None))
@@ -396,7 +396,7 @@ class Engine:
 
     def _opened_event(self, row: int, i: int, values) -> BreachEvent:
         c = self.confirm
-        return BreachEvent(type=OPENED, direction="above" if c.state[row] > 0 else "below",
+        return BreachEvent(type=OPENED, direction="above" if c.status[row] > 0 else "below",
                            started=float(c.since[row]), **self._base(row, i, values))
 
     def _closed_event(self, row: int, *, reason: str, start: float, step: float | None,
@@ -411,7 +411,7 @@ class Engine:
                         step_start=float(c.last_out[row]) - step, step_end=float(c.last_out[row]),
                         observed=math.nan, expected=math.nan, lower=math.nan, upper=math.nan,
                         score=math.nan, width=rule.width, weights={})
-            c.state[row] = 0
+            c.status[row] = 0
         else:
             base = self._base(row, i, values)
         worst = float(c.worst[row])
@@ -431,7 +431,7 @@ class Engine:
         return {
             "series_active": int(live.sum()),
             "series_learning": int(learning.sum()) + len(self.pending),
-            "breaches_open": int((live & (self.confirm.state[:n] != 0)).sum()),
+            "breaches_open": int((live & (self.confirm.status[:n] != 0)).sum()),
             "state_bytes": self.state_bytes_per_series() * int(live.sum()),
         }
 
