@@ -19,7 +19,7 @@ def test_waterflow_low_segments_are_flagged():
     rows = list(datasets.WaterFlow())
     t = np.array([x["Time"].timestamp() for x, _ in rows])
     y = np.array([v for _, v in rows])
-    eng, events = run({"rules": [{"name": "flow", "step": "auto"}]}, "flow", t, y)
+    _eng, events = run({"rules": [{"name": "flow", "step": "auto"}]}, "flow", t, y)
     segments = [(93, 112), (211, 226), (869, 886), (326, 331)]  # last: the small peak
     opened = [int(np.searchsorted(t, e.step_start)) for e in events if e.type == OPENED]
     hit = [any(lo <= i <= hi for i in opened) for lo, hi in segments]

@@ -1,5 +1,7 @@
 """Steps: aggregation, lateness, counters to rates, gaps, and independence from batching."""
 
+import itertools
+
 import numpy as np
 import pytest
 from hypothesis import given, settings
@@ -93,7 +95,7 @@ def test_events_do_not_depend_on_batching(cuts, seed):
     b = batch(keys, t, y)
     parts = []
     bounds = [0, *sorted(set(cuts)), n]
-    for lo, hi in zip(bounds, bounds[1:], strict=False):
+    for lo, hi in itertools.pairwise(bounds):
         parts += eng.ingest(b.take(np.arange(lo, hi)))
     parts += eng.finish()
     assert sorted(e.id for e in parts) == sorted(e.id for e in whole)
