@@ -49,7 +49,7 @@ class Band(ColumnState):
     def scale_of(self, ctx: StepContext) -> np.ndarray:
         """Residual scale for this step's hour-of-week bucket."""
         floor = per_rule(self.scale_floor, ctx.rule)
-        return self.scale[ctx.rows].astype(np.float64) * np.maximum(self._ratio(ctx), floor)
+        return self.scale[ctx.r].astype(np.float64) * np.maximum(self._ratio(ctx), floor)
 
     def half_width(self, ctx: StepContext, centre: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         scale = self.scale_of(ctx)
@@ -58,7 +58,7 @@ class Band(ColumnState):
         return half, scale
 
     def update(self, ctx: StepContext, resid: np.ndarray) -> None:
-        r = ctx.rows
+        r = ctx.r
         scale = self.scale[r].astype(np.float64)
         n = self.n[r]
         cap = np.where(n >= 10, RESID_CAP * scale, np.inf)
@@ -68,7 +68,7 @@ class Band(ColumnState):
         new_scale = scale + rate * (a - scale)
         # Hour-of-week ratio to the series' scale, learnt with a prior of ratio 1.
         b = ctx.buckets[168]
-        ratio = self.ratio[r, b].astype(np.float64)
+        ratio = self.ratio[ctx.rows, b].astype(np.float64)
         per_bucket = np.maximum(3600.0 / ctx.step, 1.0)
         memory = per_rule(self.memory_weeks, ctx.rule) * (WEEK / HOUR_OF_WEEK.cycle) * per_bucket
         g = np.maximum(1.0 / np.maximum(memory, MIN_RATIO_MEMORY),
@@ -76,6 +76,6 @@ class Band(ColumnState):
         with np.errstate(invalid="ignore", divide="ignore"):
             target = np.where(scale > 0, np.minimum(a / scale, 20.0), 1.0)
         learn = (n >= 10) & (ctx.step <= 3600.0)
-        self.ratio[r, b] = np.where(learn, ratio + g * (target - ratio), ratio).astype(np.float16)
+        self.ratio[ctx.rows, b] = np.where(learn, ratio + g * (target - ratio), ratio).astype(np.float16)
         self.scale[r] = new_scale.astype(np.float32)
         self.n[r] = np.minimum(n + 1, 2**31 - 2)

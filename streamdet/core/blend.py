@@ -44,22 +44,22 @@ class Blend(ColumnState):
         centre = (w * preds).sum(axis=0)
         return centre, w, any_ready
 
-    def update(self, rows: np.ndarray, rule: np.ndarray, preds: np.ndarray, ready: np.ndarray,
+    def update(self, rows: np.ndarray | slice, rule: np.ndarray, preds: np.ndarray, ready: np.ndarray,
                y: np.ndarray, scale: np.ndarray) -> None:
+        """One fixed-share step; ``scale`` must be positive (it is the loss unit)."""
         w = self.w[rows].T.astype(np.float64)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            loss = np.minimum(np.abs(preds - y) / scale, LOSS_CAP)
-        loss = np.where(np.isfinite(loss), loss, LOSS_CAP)
-        mass = (w * ready).sum(axis=0)
-        v = np.where(ready, w * np.exp(-per_rule(self.learning_rate, rule) * loss), 0.0)
+        loss = np.minimum(np.abs(preds - y) / scale, LOSS_CAP)
+        wr = w * ready
+        mass = wr.sum(axis=0)
+        v = wr * np.exp(-per_rule(self.learning_rate, rule) * loss)
         vsum = v.sum(axis=0)
-        n_ready = ready.sum(axis=0)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            v = np.where(vsum > 0, v / vsum, ready / np.maximum(n_ready, 1))
+        n_ready = np.maximum(ready.sum(axis=0), 1)
+        v /= np.where(vsum > 0, vsum, 1.0)
         share = per_rule(self.share, rule)
-        mixed = (1.0 - share) * v + share * ready / np.maximum(n_ready, 1)
+        # Where every ready weight had decayed to nothing, restart them evenly.
+        v = np.where(vsum > 0, v, ready / n_ready)
+        mixed = (1.0 - share) * v + share * (ready / n_ready)
         mass = np.where(mass > 0, mass, 1.0 / len(self.members))
         new = np.where(ready, mixed * mass, w)
-        total = new.sum(axis=0)
-        new = np.where(total > 0, new / total, 1.0 / len(self.members))
-        self.w[rows] = new.T.astype(np.float32)
+        new /= new.sum(axis=0)
+        self.w[rows] = new.T

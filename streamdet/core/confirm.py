@@ -41,11 +41,11 @@ class Confirm(ColumnState):
         "run_offset": ("f8", (), 0.0),
     }
 
-    def step(self, rows: np.ndarray, judged: np.ndarray, side: np.ndarray, counted: np.ndarray,
+    def step(self, rows: np.ndarray, sel: slice | np.ndarray, judged: np.ndarray, side: np.ndarray, counted: np.ndarray,
              score: np.ndarray, resid: np.ndarray, start: np.ndarray, step: np.ndarray,
              window: np.ndarray, needed: np.ndarray, clear_steps: np.ndarray,
              relearn_steps: np.ndarray) -> Transitions:
-        r = rows
+        r = sel  # rows as a slice when contiguous
         bits = self.bits[r].astype(np.uint64)
         mask = (np.uint64(1) << window.astype(np.uint64)) - np.uint64(1)
         new_bits = ((bits << np.uint64(1)) | counted.astype(np.uint64)) & mask
@@ -63,8 +63,8 @@ class Confirm(ColumnState):
         last_out = np.where(counted & judged, start + step, self.last_out[r])
         if opened.any():
             oldest = np.floor(np.log2(np.maximum(bits, 1).astype(np.float64)))
-            self.since[r[opened]] = (start - oldest * step)[opened]
-            self.decided[r[opened]] = start[opened]
+            self.since[rows[opened]] = (start - oldest * step)[opened]
+            self.decided[rows[opened]] = start[opened]
             worst = np.where(opened, score, worst)
             state = np.where(opened, np.sign(side).astype(np.int8), state)
             clear_run = np.where(opened, 0, clear_run)

@@ -33,6 +33,7 @@ from streamdet.core.band import Band
 from streamdet.core.blend import Blend
 from streamdet.core.columns import ColumnState
 from streamdet.core.confirm import Confirm
+from streamdet.core.forecast.base import as_index
 from streamdet.core.forecast import (
     DampedHolt,
     HoltWinters,
@@ -198,7 +199,11 @@ class Engine:
         if rows.shape[0] == 0:
             return []
         tab = self.table
-        np.maximum.at(tab.last_seen, rows, t)
+        unique_rows = np.bincount(rows).max() == 1
+        if unique_rows:
+            tab.last_seen[rows] = np.maximum(tab.last_seen[rows], t)
+        else:
+            np.maximum.at(tab.last_seen, rows, t)
         seen_clock = running_clock(self.clock, t)
         self.clock = max(self.clock, float(t.max()))
         step = tab.step[rows]
@@ -318,19 +323,20 @@ class Engine:
     def _judge(self, rows: np.ndarray, k: np.ndarray, y: np.ndarray) -> list[BreachEvent]:
         """One wave: at most one closed step per row, all judged together."""
         tab = self.table
-        rule = tab.rule[rows]
-        step = tab.step[rows]
+        sel = as_index(rows)
+        rule = tab.rule[sel]
+        step = tab.step[sel]
         start = k * step
-        first = tab.first[rows]
+        first = tab.first[sel]
         first = np.where(np.isnan(first), start, first)
-        tab.first[rows] = first
+        tab.first[sel] = first
         ctx = StepContext.build(rows, rule, start, step, start - first)
         outs = [fc.predict(ctx) for fc in self.forecasters]
         preds = np.concatenate([o[0] for o in outs])
         ready = np.concatenate([o[1] for o in outs]) & self.member_enabled[:, rule]
-        centre, weights, any_ready = self.blend.combine(rows, preds, ready)
+        centre, weights, any_ready = self.blend.combine(sel, preds, ready)
         half, scale = self.band.half_width(ctx, centre)
-        learning = (self.band.n[rows] < tab.warmup[rows]) | ~any_ready
+        learning = (self.band.n[sel] < tab.warmup[sel]) | ~any_ready
         judged = ~learning
         resid = y - centre
         side = np.where(resid > half, 1, np.where(resid < -half, -1, 0)) * judged
@@ -339,9 +345,9 @@ class Engine:
         with np.errstate(invalid="ignore", divide="ignore"):
             score = np.where(scale > 0, resid / scale, np.sign(resid) * np.inf)
         lower, upper = centre - half, centre + half
-        trans = self.confirm.step(rows, judged, side, counted, score, resid, start, step,
+        trans = self.confirm.step(rows, sel, judged, side, counted, score, resid, start, step,
                                   self.rule_window[rule], self.rule_needed[rule],
-                                  self.rule_clear[rule], tab.relearn[rows])
+                                  self.rule_clear[rule], tab.relearn[sel])
         if self.log is not None:
             self.log.add(rows, start, y, np.where(any_ready, centre, np.nan),
                          np.where(judged, lower, np.nan), np.where(judged, upper, np.nan), judged)
@@ -362,7 +368,7 @@ class Engine:
         ctx.shape_y = np.where(judged, np.clip(y, centre - SHAPE_CLIP * half, centre + SHAPE_CLIP * half), y)
         loss_scale = np.where(scale > 0, scale, np.maximum(np.abs(centre), 1.0))
         # Members are judged on what really happened (the loss cap bounds a spike's effect).
-        self.blend.update(rows, rule, preds, ready, y, loss_scale)
+        self.blend.update(sel, rule, preds, ready, y, loss_scale)
         for fc in self.forecasters:
             fc.update(ctx, y_fit)
         has_centre = any_ready

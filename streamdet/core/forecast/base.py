@@ -60,11 +60,18 @@ class StepContext:
     # The value seasonal profiles learn from: clipped more loosely than the level's input, so a
     # shape that recurs is learnt in full while one spike moves a bucket by a bounded amount.
     shape_y: np.ndarray | None = None
+    sel: slice | np.ndarray | None = None  # ``rows`` as a slice when contiguous (cheap 1-D access)
+    memo: dict = field(default_factory=dict)  # values several parts derive from this step
+
+    @property
+    def r(self) -> slice | np.ndarray:
+        """Index for 1-D columns: a slice where possible, else the row array."""
+        return self.rows if self.sel is None else self.sel
 
     @classmethod
     def build(cls, rows, rule, start, step, age) -> StepContext:
         return cls(rows, rule, start, step, age,
-                   {168: hour_of_week(start), 24: hour_of_day(start)})
+                   {168: hour_of_week(start), 24: hour_of_day(start)}, sel=as_index(rows))
 
     @classmethod
     def sequence(cls, n: int, *, period: int | None = None, step: float = 1.0) -> list[StepContext]:
@@ -80,16 +87,30 @@ class StepContext:
         return out
 
 
+def as_index(rows: np.ndarray) -> slice | np.ndarray:
+    """A slice for sorted contiguous rows (views instead of gathers), else the rows themselves."""
+    n = rows.shape[0]
+    if n and rows[-1] - rows[0] == n - 1 and (n < 3 or rows[1] - rows[0] == 1):
+        if n < 3 or bool((np.diff(rows) == 1).all()):
+            return slice(int(rows[0]), int(rows[-1]) + 1)
+    return rows
+
+
 def visits(ctx: StepContext, profile: Profile) -> np.ndarray:
     """About how many times this step's bucket has been visited before, from the series' age.
 
     Used for running-mean learning rates early on (no per-bucket counters needed).
     """
     assert profile.cycle is not None
+    key = ("visits", profile)
+    if key in ctx.memo:
+        return ctx.memo[key]
     bucket = profile.cycle / profile.period
     per_bucket = np.maximum(bucket / ctx.step, 1.0)
     within = np.floor(np.mod(ctx.start, bucket) / ctx.step)
-    return np.floor(ctx.age / profile.cycle) * per_bucket + np.minimum(within, per_bucket - 1)
+    out = np.floor(ctx.age / profile.cycle) * per_bucket + np.minimum(within, per_bucket - 1)
+    ctx.memo[key] = out
+    return out
 
 
 def damped_sum(phi: np.ndarray | float, h: np.ndarray) -> np.ndarray:

@@ -44,14 +44,14 @@ class DampedHolt(Forecaster):
         self.phi = np.atleast_1d(np.asarray(phi, dtype=np.float64))
 
     def predict(self, ctx: StepContext) -> tuple[np.ndarray, np.ndarray]:
-        r = ctx.rows
+        r = ctx.r
         n = self.n[r]
         h = horizon(self.last[r], n, ctx)
         yhat = self.level[r] + damped_sum(per_rule(self.phi, ctx.rule), h) * self.trend[r]
         return yhat[None, :], (n >= self.warmup)[None, :]
 
     def update(self, ctx: StepContext, y: np.ndarray) -> None:
-        r = ctx.rows
+        r = ctx.r
         n = self.n[r]
         level, trend = self.level[r], self.trend[r]
         phi = per_rule(self.phi, ctx.rule)

@@ -32,11 +32,11 @@ class StreamingMedian(Forecaster):
         self.rate = np.atleast_1d(np.asarray(rate, dtype=np.float64))
 
     def predict(self, ctx: StepContext) -> tuple[np.ndarray, np.ndarray]:
-        r = ctx.rows
+        r = ctx.r
         return self.m[r][None, :], (self.n[r] >= self.warmup)[None, :]
 
     def update(self, ctx: StepContext, y: np.ndarray) -> None:
-        r = ctx.rows
+        r = ctx.r
         m, spread, n = self.m[r], self.spread[r], self.n[r]
         d = y - m
         ad = np.abs(d)

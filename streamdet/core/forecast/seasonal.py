@@ -74,8 +74,16 @@ class HoltWinters(Forecaster):
         gamma = -np.expm1(-1.0 / memory_visits)
         return np.maximum(gamma, 1.0 / (visits(ctx, p) + 1.0))
 
-    def _served(self, ctx: StepContext) -> tuple[np.ndarray, np.ndarray]:
-        """Seasonal term per row from the first usable profile, and whether one was usable."""
+    def _served(self, ctx: StepContext, *, consume: bool = False) -> tuple[np.ndarray, np.ndarray]:
+        """Seasonal term per row from the first usable profile, and whether one was usable.
+
+        ``predict`` leaves it in ``ctx.memo`` for the ``update`` that follows on the same step,
+        which takes it out again (state changes after that).
+        """
+        if consume and "seasonal" in ctx.memo:
+            return ctx.memo.pop("seasonal")
+        if "seasonal" in ctx.memo:
+            return ctx.memo["seasonal"]
         r = ctx.rows
         out = np.zeros(r.shape[0])
         found = np.zeros(r.shape[0], dtype=bool)
@@ -86,10 +94,12 @@ class HoltWinters(Forecaster):
                 ok &= (ctx.age >= p.cycle) & (ctx.step <= p.bucket_seconds)
             out = np.where(ok, s, out)
             found |= ok
+        if not consume:
+            ctx.memo["seasonal"] = (out, found)
         return out, found
 
     def predict(self, ctx: StepContext) -> tuple[np.ndarray, np.ndarray]:
-        r = ctx.rows
+        r = ctx.r
         n = self.n[r]
         h = horizon(self.last[r], n, ctx)
         season, found = self._served(ctx)
@@ -97,7 +107,7 @@ class HoltWinters(Forecaster):
         return yhat[None, :], (found & (n >= self.warmup))[None, :]
 
     def update(self, ctx: StepContext, y: np.ndarray) -> None:
-        r = ctx.rows
+        r = ctx.r
         n = self.n[r]
         level, trend = self.level[r], self.trend[r]
         phi = per_rule(self.phi, ctx.rule)
@@ -105,7 +115,7 @@ class HoltWinters(Forecaster):
         h = horizon(self.last[r], n, ctx)
         first = n == 0
         base = np.where(first, y, level + damped_sum(phi, h) * trend)
-        season, found = self._served(ctx)
+        season, found = self._served(ctx, consume=True)
         alpha = np.maximum(per_rule(self.alpha, ctx.rule), 1.0 / (n + 1.0))
         new_level = alpha * (y - season) + (1.0 - alpha) * base
         new_trend = beta * (new_level - level) / h + (1.0 - beta) * (phi**h) * trend
@@ -114,10 +124,10 @@ class HoltWinters(Forecaster):
         for p in self.profiles:
             arr = getattr(self, f"s{p.period}")
             b = ctx.buckets[p.period]
-            old = arr[r, b].astype(np.float64)
+            old = arr[ctx.rows, b].astype(np.float64)
             start = np.where(np.isnan(old), np.where(found, season, resid), old)
             g = self._rate(ctx, p)
-            arr[r, b] = g * resid + (1.0 - g) * start
+            arr[ctx.rows, b] = g * resid + (1.0 - g) * start
         self.level[r] = np.where(first, y, new_level)
         self.trend[r] = np.where(first, 0.0, new_trend)
         self.n[r] = np.minimum(n + 1, 2**31 - 2)
