@@ -41,7 +41,8 @@ class Confirm(ColumnState):
         "run_offset": ("f8", (), 0.0),
     }
 
-    def step(self, rows: np.ndarray, sel: slice | np.ndarray, judged: np.ndarray, side: np.ndarray, counted: np.ndarray,
+    def step(self, rows: np.ndarray, sel: slice | np.ndarray,
+             judged: np.ndarray, side: np.ndarray, counted: np.ndarray,
              score: np.ndarray, resid: np.ndarray, start: np.ndarray, step: np.ndarray,
              window: np.ndarray, needed: np.ndarray, clear_steps: np.ndarray,
              relearn_steps: np.ndarray) -> Transitions:

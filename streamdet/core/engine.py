@@ -33,7 +33,6 @@ from streamdet.core.band import Band
 from streamdet.core.blend import Blend
 from streamdet.core.columns import ColumnState
 from streamdet.core.confirm import Confirm
-from streamdet.core.forecast.base import as_index
 from streamdet.core.forecast import (
     DampedHolt,
     HoltWinters,
@@ -41,6 +40,7 @@ from streamdet.core.forecast import (
     StepContext,
     StreamingMedian,
 )
+from streamdet.core.forecast.base import as_index
 from streamdet.core.points import PointBatch
 from streamdet.core.series import SeriesTable
 from streamdet.core.steps import AGGREGATION_CODES, ClosedSteps, Steps, running_clock

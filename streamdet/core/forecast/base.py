@@ -90,9 +90,8 @@ class StepContext:
 def as_index(rows: np.ndarray) -> slice | np.ndarray:
     """A slice for sorted contiguous rows (views instead of gathers), else the rows themselves."""
     n = rows.shape[0]
-    if n and rows[-1] - rows[0] == n - 1 and (n < 3 or rows[1] - rows[0] == 1):
-        if n < 3 or bool((np.diff(rows) == 1).all()):
-            return slice(int(rows[0]), int(rows[-1]) + 1)
+    if n and rows[-1] - rows[0] == n - 1 and (n < 3 or bool((np.diff(rows) == 1).all())):
+        return slice(int(rows[0]), int(rows[-1]) + 1)
     return rows
 
 
