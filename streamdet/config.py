@@ -4,7 +4,7 @@
 :class:`ConfigError` listing every problem found (not just the first).
 
 >>> cfg = parse_config({"rules": [{"name": "all", "width": 4}]})
->>> cfg.rules[0].width, cfg.rules[0].confirm.steps
+>>> cfg.rules[0].width, cfg.rules[0].confirm_steps
 (4.0, 5)
 """
 

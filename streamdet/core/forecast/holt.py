@@ -11,7 +11,7 @@ forecast ``l + phi*b``. Early on the level learns as a running mean
 >>> for ctx, y in zip(StepContext.sequence(4), [10.0, 12.0, 14.0, 16.0]):
 ...     f.update(ctx, np.array([y]))
 >>> round(float(f.level[0]), 3)
-14.5
+14.378
 """
 
 from __future__ import annotations
@@ -43,28 +43,37 @@ class DampedHolt(Forecaster):
         self.beta = np.atleast_1d(np.asarray(beta, dtype=np.float64))
         self.phi = np.atleast_1d(np.asarray(phi, dtype=np.float64))
 
-    def predict(self, ctx: StepContext) -> tuple[np.ndarray, np.ndarray]:
+    def _trend_forecast(self, ctx: StepContext) -> np.ndarray:
+        """Level plus damped trend over the horizon since the last update."""
         r = ctx.r
-        n = self.n[r]
-        h = horizon(self.last[r], n, ctx)
-        yhat = self.level[r] + damped_sum(per_rule(self.phi, ctx.rule), h) * self.trend[r]
-        return yhat[None, :], (n >= self.warmup)[None, :]
+        h = horizon(self.last[r], self.n[r], ctx)
+        return self.level[r] + damped_sum(per_rule(self.phi, ctx.rule), h) * self.trend[r]
 
-    def update(self, ctx: StepContext, y: np.ndarray) -> None:
+    def predict(self, ctx: StepContext) -> tuple[np.ndarray, np.ndarray]:
+        return self._trend_forecast(ctx)[None, :], (self.n[ctx.r] >= self.warmup)[None, :]
+
+    def _smooth(self, ctx: StepContext, target: np.ndarray) -> np.ndarray:
+        """One level/trend step towards ``target``; returns the forecast it replaced
+        (``target`` itself for a series' first step)."""
         r = ctx.r
         n = self.n[r]
         level, trend = self.level[r], self.trend[r]
         phi = per_rule(self.phi, ctx.rule)
         beta = per_rule(self.beta, ctx.rule)
         h = horizon(self.last[r], n, ctx)
-        alpha = np.maximum(per_rule(self.alpha, ctx.rule), 1.0 / (n + 1.0))
-        new_level = alpha * y + (1.0 - alpha) * (level + damped_sum(phi, h) * trend)
-        new_trend = beta * (new_level - level) / h + (1.0 - beta) * (phi**h) * trend
         first = n == 0
-        self.level[r] = np.where(first, y, new_level)
+        base = np.where(first, target, level + damped_sum(phi, h) * trend)
+        alpha = np.maximum(per_rule(self.alpha, ctx.rule), 1.0 / (n + 1.0))
+        new_level = alpha * target + (1.0 - alpha) * base
+        new_trend = beta * (new_level - level) / h + (1.0 - beta) * (phi**h) * trend
+        self.level[r] = np.where(first, target, new_level)
         self.trend[r] = np.where(first, 0.0, new_trend)
         self.n[r] = np.minimum(n + 1, 2**31 - 2)
         self.last[r] = ctx.start
+        return base
+
+    def update(self, ctx: StepContext, y: np.ndarray) -> None:
+        self._smooth(ctx, y)
 
     def shift(self, rows: np.ndarray, delta: np.ndarray) -> None:
         self.level[rows] += delta

@@ -20,16 +20,14 @@ from streamdet.core.forecast.base import (
     HOUR_OF_DAY,
     HOUR_OF_WEEK,
     WEEK,
-    Forecaster,
     Profile,
     StepContext,
-    damped_sum,
-    horizon,
     visits,
 )
+from streamdet.core.forecast.holt import DampedHolt
 
 
-class HoltWinters(Forecaster):
+class HoltWinters(DampedHolt):
     members = ("seasonal",)
     prefix = "seasonal"
     warmup = 3
@@ -48,20 +46,12 @@ class HoltWinters(Forecaster):
         self.profiles = tuple(profiles)
         if any(p.cycle is None for p in self.profiles) and gamma is None:
             raise ValueError("a profile without a cycle needs a fixed gamma")
-        super().__init__(capacity)
-        self.alpha = np.atleast_1d(np.asarray(alpha, dtype=np.float64))
-        self.beta = np.atleast_1d(np.asarray(beta, dtype=np.float64))
-        self.phi = np.atleast_1d(np.asarray(phi, dtype=np.float64))
+        super().__init__(capacity, alpha=alpha, beta=beta, phi=phi)
         self.memory_weeks = np.atleast_1d(np.asarray(memory_weeks, dtype=np.float64))
         self.gamma = gamma
 
     def columns(self) -> ColumnSpec:
-        spec: ColumnSpec = {
-            "level": ("f8", (), 0.0),
-            "trend": ("f8", (), 0.0),
-            "n": ("i4", (), 0),
-            "last": ("f8", (), 0.0),
-        }
+        spec: ColumnSpec = dict(DampedHolt.COLUMNS)
         for p in self.profiles:
             spec[f"s{p.period}"] = ("f4", (p.period,), np.nan)
         return spec
@@ -99,28 +89,15 @@ class HoltWinters(Forecaster):
         return out, found
 
     def predict(self, ctx: StepContext) -> tuple[np.ndarray, np.ndarray]:
-        r = ctx.r
-        n = self.n[r]
-        h = horizon(self.last[r], n, ctx)
         season, found = self._served(ctx)
-        yhat = self.level[r] + damped_sum(per_rule(self.phi, ctx.rule), h) * self.trend[r] + season
-        return yhat[None, :], (found & (n >= self.warmup))[None, :]
+        ready = found & (self.n[ctx.r] >= self.warmup)
+        return (self._trend_forecast(ctx) + season)[None, :], ready[None, :]
 
     def update(self, ctx: StepContext, y: np.ndarray) -> None:
-        r = ctx.r
-        n = self.n[r]
-        level, trend = self.level[r], self.trend[r]
-        phi = per_rule(self.phi, ctx.rule)
-        beta = per_rule(self.beta, ctx.rule)
-        h = horizon(self.last[r], n, ctx)
-        first = n == 0
-        base = np.where(first, y, level + damped_sum(phi, h) * trend)
         season, found = self._served(ctx, consume=True)
-        alpha = np.maximum(per_rule(self.alpha, ctx.rule), 1.0 / (n + 1.0))
-        new_level = alpha * (y - season) + (1.0 - alpha) * base
-        new_trend = beta * (new_level - level) / h + (1.0 - beta) * (phi**h) * trend
+        base = self._smooth(ctx, y - season)  # deseasonalised one-step forecast
         shape_y = y if ctx.shape_y is None else ctx.shape_y
-        resid = shape_y - base  # y minus the deseasonalised one-step forecast
+        resid = shape_y - base
         for p in self.profiles:
             arr = getattr(self, f"s{p.period}")
             b = ctx.buckets[p.period]
@@ -128,10 +105,3 @@ class HoltWinters(Forecaster):
             start = np.where(np.isnan(old), np.where(found, season, resid), old)
             g = self._rate(ctx, p)
             arr[ctx.rows, b] = g * resid + (1.0 - g) * start
-        self.level[r] = np.where(first, y, new_level)
-        self.trend[r] = np.where(first, 0.0, new_trend)
-        self.n[r] = np.minimum(n + 1, 2**31 - 2)
-        self.last[r] = ctx.start
-
-    def shift(self, rows: np.ndarray, delta: np.ndarray) -> None:
-        self.level[rows] += delta
