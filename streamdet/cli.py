@@ -1,4 +1,4 @@
-"""Command line: ``streamdet replay`` and ``streamdet check``."""
+"""Command line: ``streamdet run``, ``replay``, ``check`` and ``demo``."""
 
 from __future__ import annotations
 
@@ -15,8 +15,11 @@ def _load(path: str | None) -> Config:
 
 
 def cmd_check(args: argparse.Namespace) -> int:
+    from streamdet.daemon.settings import parse_settings
+
     try:
         cfg = load_config(args.config)
+        parse_settings(cfg)
     except ConfigError as exc:
         print(f"{args.config}: {len(exc.problems)} problem(s)", file=sys.stderr)
         for p in exc.problems:
@@ -55,6 +58,32 @@ def cmd_replay(args: argparse.Namespace) -> int:
     return 0
 
 
+def _partition(text: str) -> tuple[str, int]:
+    topic, sep, part = text.rpartition(":")
+    if not sep or not topic or not part.isdigit():
+        raise argparse.ArgumentTypeError(f"expected TOPIC:PARTITION, got {text!r}")
+    return topic, int(part)
+
+
+def cmd_run(args: argparse.Namespace) -> int:
+    from prometheus_client import CollectorRegistry
+
+    from streamdet.daemon.consumer import Daemon
+    from streamdet.daemon.health import Metrics
+    from streamdet.daemon.logs import setup_logging
+    from streamdet.daemon.settings import load_with_environment
+
+    try:
+        cfg, settings = load_with_environment(args.config)
+    except ConfigError as exc:
+        print(str(exc), file=sys.stderr)
+        return 2
+    setup_logging(args.log_format or settings.log_format, settings.log_level)
+    daemon = Daemon(cfg, settings, metrics=Metrics(CollectorRegistry()), events_file=args.events_file,
+                    fresh_partitions=args.fresh_partition or ())
+    return daemon.run()
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="streamdet", description=__doc__)
     sub = parser.add_subparsers(dest="command", required=True)
@@ -66,6 +95,13 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--format", choices=("csv", "json", "influx"),
                    help="input format (default: from each file's extension)")
     p.set_defaults(func=cmd_replay)
+    r = sub.add_parser("run", help="run the Kafka daemon until SIGTERM")
+    r.add_argument("--config", "-c", help="YAML config; STREAMDET_* environment variables override it")
+    r.add_argument("--events-file", help="write events as JSON lines here instead of the output topic")
+    r.add_argument("--fresh-partition", action="append", type=_partition, metavar="TOPIC:PARTITION",
+                   help="discard that partition's checkpoint and start it fresh (repeatable)")
+    r.add_argument("--log-format", choices=("text", "json"), help="log format (default: logging.format)")
+    r.set_defaults(func=cmd_run)
     c = sub.add_parser("check", help="validate a config file (exit code 2 on errors)")
     c.add_argument("config")
     c.set_defaults(func=cmd_check)

