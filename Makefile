@@ -3,13 +3,16 @@ PYTHON ?= python3
 VENV ?= .venv
 PY := $(VENV)/bin/python
 
-.PHONY: test lint bench clean
+.PHONY: demo test lint bench clean
 
 $(VENV)/.installed: pyproject.toml
 	$(PYTHON) -m venv $(VENV)
 	$(PY) -m pip install --quiet --upgrade pip
 	$(PY) -m pip install --quiet -e '.[test]'
 	touch $@
+
+demo: $(VENV)/.installed
+	$(VENV)/bin/streamdet demo --out demo-out
 
 test: $(VENV)/.installed
 	@$(PY) -m pytest -q; rc=$$?; \
@@ -21,6 +24,7 @@ lint: $(VENV)/.installed
 
 bench: $(VENV)/.installed
 	$(PY) benchmarks/engine_throughput.py
+	$(PY) benchmarks/daemon_throughput.py
 
 clean:
 	rm -rf $(VENV) .pytest_cache demo-out

@@ -102,6 +102,12 @@ def build_parser() -> argparse.ArgumentParser:
                    help="discard that partition's checkpoint and start it fresh (repeatable)")
     r.add_argument("--log-format", choices=("text", "json"), help="log format (default: logging.format)")
     r.set_defaults(func=cmd_run)
+    d = sub.add_parser("demo", help="a fictional shop's metrics through a local broker and the daemon")
+    d.add_argument("--out", default="demo-out", help="where plots and demo state go")
+    d.add_argument("--bootstrap-servers", help="use this Kafka instead of starting the bundled broker")
+    d.add_argument("--produce-only", action="store_true", help="only produce the scenario's points")
+    d.set_defaults(func=lambda a: __import__("streamdet.demo", fromlist=["run_demo"]).run_demo(
+        a.out, a.bootstrap_servers, a.produce_only))
     c = sub.add_parser("check", help="validate a config file (exit code 2 on errors)")
     c.add_argument("config")
     c.set_defaults(func=cmd_check)

@@ -41,8 +41,9 @@ def breach_spans(events: Iterable[BreachEvent], end: float) -> dict[str, list[tu
 
 
 def plot_series(engine: Engine, events: list[BreachEvent], out_dir: str | Path,
-                keys: Iterable[str] | None = None) -> list[Path]:
-    """One PNG per series that breached (or per key in ``keys``); returns the paths written."""
+                keys: Iterable[str] | None = None, since: float | None = None) -> list[Path]:
+    """One PNG per series that breached (or per key in ``keys``), from ``since`` (epoch s) on;
+    returns the paths written."""
     import matplotlib
 
     matplotlib.use("Agg")
@@ -63,6 +64,8 @@ def plot_series(engine: Engine, events: list[BreachEvent], out_dir: str | Path,
         if row is None:
             continue
         sel = cols["row"] == row
+        if since is not None:
+            sel &= cols["start"] >= since
         t = [datetime.fromtimestamp(x, tz=UTC) for x in cols["start"][sel]]
         fig, ax = plt.subplots(figsize=(11, 3.6), dpi=100)
         fig.patch.set_facecolor("white")

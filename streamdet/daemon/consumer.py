@@ -74,7 +74,7 @@ class Daemon:
 
     def _client_conf(self) -> dict[str, str]:
         return {"bootstrap.servers": self.settings.bootstrap_servers, **self.settings.client,
-                "error_cb": self._on_error}
+                "error_cb": self._on_error, "logger": logging.getLogger("streamdet.librdkafka")}
 
     def consumer_conf(self) -> dict:
         s = self.settings

@@ -89,3 +89,61 @@ def test_events_reach_the_output_topic_and_equal_replay(broker, tmp_path):
         assert d == orjson.loads(by_id[d["id"]].to_json())
     assert metrics.registry.get_sample_value("streamdet_events_out_total",
                                              {"type": "streamdet.breach.opened"}) == 6
+
+
+def test_malformed_records_go_to_the_dead_letter_topic(broker, tmp_path):
+    topics = (unique("in"), unique("out"), unique("dlq"))
+    broker.create_topics(*topics)
+    points = waterflow_points(sites=1)
+    good = as_messages(points)
+    bad = [(b"x", b'{"metric": "waterflow", "time": 1650000000, "value": "lots"}'),
+           (b"x", b"this is not json"),
+           (b"x", b'[{"metric": "waterflow", "labels": {"site": "s0"}, "time": "2022-04-01T00:30:00",'
+                  b' "value": 1}, {"metric": "m", "time": "soon", "value": 2}]')]
+    stream = good[:400] + bad[:1] + good[400:800] + bad[1:] + good[800:]
+    broker.produce(topics[0], stream)
+    daemon, metrics = make_daemon(broker, tmp_path, topics)
+    with Running(daemon):
+        # every good point is processed, including the good half of the mixed message
+        assert wait_for(lambda: metrics.registry.get_sample_value("streamdet_records_in_total")
+                        == len(points) + 4)
+        dead = broker.read_all(topics[2], expect=3)
+    assert len(dead) == 3
+    h = [dict(m.headers()) for m in dead]
+    assert [x["streamdet-error"].decode() for x in h] == [
+        "value 'lots' is not numeric", h[1]["streamdet-error"].decode(), "time 'soon' is not ISO 8601 or an epoch"]
+    assert h[1]["streamdet-error"].startswith(b"invalid JSON")
+    assert all(x["source-topic"].decode() == topics[0] and x["source-partition"] == b"0" for x in h)
+    assert [int(x["source-offset"]) for x in h] == [400, 801, 802]
+    assert dead[1].value() == b"this is not json"
+    get = metrics.registry.get_sample_value
+    assert get("streamdet_dead_letters_total") == 3
+    assert get("streamdet_records_bad_total", {"reason": "bad_value"}) == 1
+    assert get("streamdet_records_bad_total", {"reason": "invalid_json"}) == 1
+    assert get("streamdet_records_bad_total", {"reason": "bad_time"}) == 1
+    # the mixed message's good point was accepted (it is a late point for its series here)
+    assert get("streamdet_points_accepted_total") + get("streamdet_points_late_total") == len(points) + 1
+
+
+def test_events_file_sink_and_corrupt_checkpoint(broker, tmp_path):
+    topics = (unique("in"), None, None)
+    broker.create_topics(topics[0])
+    points = waterflow_points(sites=1)
+    broker.produce(topics[0], as_messages(points))
+    out = tmp_path / "events.jsonl"
+    daemon, metrics = make_daemon(broker, tmp_path, topics, events_file=str(out))
+    with Running(daemon):
+        assert wait_for(lambda: metrics.registry.get_sample_value("streamdet_points_accepted_total")
+                        == len(points))
+    lines = out.read_bytes().splitlines()
+    assert [orjson.loads(x)["id"] for x in lines] == [e.id for e in replay_events(points)]
+    # Damage the checkpoint: the next start fails loudly naming the file, unless told to start fresh.
+    ckpt = next((tmp_path / "state").glob("*.ckpt"))
+    ckpt.write_bytes(ckpt.read_bytes()[:-20])
+    group = daemon.settings.group_id
+    again, _ = make_daemon(broker, tmp_path, topics, events_file=str(out), extra={"group_id": group})
+    assert again.run(install_signals=False) == 2
+    fresh, m2 = make_daemon(broker, tmp_path, topics, events_file=str(out),
+                            extra={"group_id": group}, fresh_partitions=[(topics[0], 0)])
+    with Running(fresh):
+        assert wait_for(lambda: m2.registry.get_sample_value("streamdet_ready") == 1)

