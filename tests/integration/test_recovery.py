@@ -34,7 +34,7 @@ def write_config(path, broker, topics, state_dir, port, **kafka):
 
 def start(config_path, log_path):
     return subprocess.Popen([sys.executable, "-m", "streamdet", "run", "--config", str(config_path)],
-                            stdout=open(log_path, "ab"), stderr=subprocess.STDOUT)  # noqa: SIM115
+                            stdout=open(log_path, "ab"), stderr=subprocess.STDOUT)
 
 
 def metric(port, name, labels=""):

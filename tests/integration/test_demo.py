@@ -1,0 +1,22 @@
+"""`streamdet demo` (the README's first command) runs end to end and exits by itself."""
+
+import subprocess
+import sys
+
+import pytest
+
+pytestmark = pytest.mark.broker
+
+
+def test_demo_shows_the_incidents_and_writes_plots(tmp_path):
+    out = tmp_path / "demo-out"
+    proc = subprocess.run([sys.executable, "-m", "streamdet", "demo", "--out", str(out)],
+                          capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    text = proc.stdout
+    assert "OPENED  orders_per_minute{shop=\"larkspur-web\"}" in text and " below " in text
+    assert "OPENED  checkout_latency_seconds{service=\"checkout\"}" in text
+    assert "OPENED  packing_queue_depth{site=\"warehouse-1\"}" in text
+    assert "CLOSED  packing_queue_depth{site=\"warehouse-1\"}" in text  # relearned: stops alerting
+    assert "cpu_utilisation" not in text  # healthy hosts stay quiet
+    assert len(list(out.glob("*.png"))) == 3
