@@ -10,7 +10,7 @@ fields are ignored (a line with no numeric field at all is an error).
 from __future__ import annotations
 
 from streamdet.codecs.common import Decoded, ErrorCollector, RecordError, TimeRules, finish
-from streamdet.core.points import PointBuilder
+from streamdet.core.points import PointBatch, PointBuilder
 
 _PRECISION = {"s": 1.0, "ms": 1e3, "us": 1e6, "ns": 1e9}
 _TRUE = {"t", "T", "true", "True", "TRUE"}
@@ -143,6 +143,7 @@ def decode_influx(
     prefix: str = "",
     rules: TimeRules = _DEFAULT_RULES,
     precision: str = "ns",
+    builder: PointBuilder | None = None,
 ) -> Decoded:
     r"""Decode line-protocol text (one or many lines).
 
@@ -151,7 +152,8 @@ def decode_influx(
     (['cpu_idle{host="a"}', 'cpu_usage{host="a"}'], [60.0, 60.0])
     """
     scale = _PRECISION[precision]
-    builder = PointBuilder()
+    own = builder is None
+    builder = PointBuilder() if builder is None else builder
     errors = ErrorCollector(prefix)
     records = 0
     try:
@@ -171,4 +173,6 @@ def decode_influx(
             continue
         for metric, labels, t, v in points:
             builder.add(metric, labels, t, v)
+    if not own:
+        return Decoded(points=PointBatch.empty(), errors=errors.errors, records=records)
     return finish(builder, errors, records)

@@ -2,10 +2,14 @@
 
 Object form: ``{"metric": "cpu", "labels": {"host": "a"}, "time": ..., "value": ...}``.
 The Prometheus data-model form is accepted too: the metric name as the
-``__name__`` label and no ``metric`` field.
+``__name__`` label and no ``metric`` field. Well-formed objects with numeric epoch-second
+times and values take a fast path; everything else goes through the validating one.
 """
 
 from __future__ import annotations
+
+import math
+from collections.abc import Callable
 
 import orjson
 
@@ -18,12 +22,28 @@ from streamdet.codecs.common import (
     parse_time,
     parse_value,
 )
-from streamdet.core.points import PointBuilder, normalise_labels
+from streamdet.core.points import PointBatch, PointBuilder, normalise_labels
 
 _DEFAULT_RULES = TimeRules()
+_EMPTY = PointBatch.empty()
+_NUM = (int, float)
+_isfinite = math.isfinite
 
 
 def _add_object(obj: object, builder: PointBuilder, rules: TimeRules) -> None:
+    if type(obj) is dict:
+        metric, labels, t, v = obj.get("metric"), obj.get("labels"), obj.get("time"), obj.get("value")
+        if (type(metric) is str and metric and type(t) in _NUM and type(v) in _NUM
+                and (labels is None or (type(labels) is dict and "__name__" not in labels))):
+            t, v = float(t), float(v)
+            if (_isfinite(v) and _isfinite(t) and abs(t) < 1e11
+                    and (rules.now is None or t <= rules.now + rules.max_future)
+                    and builder.add_raw(metric, tuple(labels.items()) if labels else (), t, v)):
+                return
+    _add_object_checked(obj, builder, rules)
+
+
+def _add_object_checked(obj: object, builder: PointBuilder, rules: TimeRules) -> None:
     if not isinstance(obj, dict):
         raise RecordError(f"expected a JSON object, got {type(obj).__name__}")
     labels_raw = obj.get("labels")
@@ -50,47 +70,69 @@ def _add_object(obj: object, builder: PointBuilder, rules: TimeRules) -> None:
     builder.add(metric, normalise_labels(labels), t, v)
 
 
+def _add_document(doc: object, where: str, chunk: bytes, builder: PointBuilder, rules: TimeRules,
+                  errors: ErrorCollector) -> int:
+    items = doc if type(doc) is list else (doc,)
+    for i, item in enumerate(items, start=1):
+        try:
+            _add_object(item, builder, rules)
+        except RecordError as exc:
+            item_where = f"{where} item {i}" if type(doc) is list else where
+            errors.add(item_where, str(exc), orjson.dumps(item) if _dumpable(item) else chunk)
+    return len(items)
+
+
 def decode_json(
     data: bytes,
     *,
     prefix: str = "",
     rules: TimeRules = _DEFAULT_RULES,
     lines: bool | None = None,
+    builder: PointBuilder | None = None,
 ) -> Decoded:
     """Decode one JSON message, or JSON lines when ``lines`` is true.
 
-    With ``lines=None`` a payload holding several non-empty lines is read as JSON lines.
+    With ``lines=None`` the payload is read as one document, and as JSON lines if that fails
+    and it holds several lines. With ``builder`` the points are appended to it (for decoding
+    many messages into one batch) and the returned batch is empty.
 
     >>> d = decode_json(b'{"metric": "q", "time": 60, "value": 3}')
     >>> d.points.keys, d.points.value.tolist(), d.errors
     (['q'], [3.0], [])
     """
-    builder = PointBuilder()
+    own = builder is None
+    out = PointBuilder() if builder is None else builder
     errors = ErrorCollector(prefix)
     records = 0
-    if lines is None:
-        stripped = data.strip()
-        lines = b"\n" in stripped and not stripped.startswith(b"[")
-    chunks = data.splitlines() if lines else [data]
-    for lineno, chunk in enumerate(chunks, start=1):
-        where = f"line {lineno}" if lines else "record"
-        if lines and not chunk.strip():
+    if not lines:
+        try:
+            doc = orjson.loads(data)
+        except orjson.JSONDecodeError as exc:
+            if lines is None and b"\n" in data.strip():
+                lines = True
+            else:
+                errors.add("record", f"invalid JSON ({exc})", data)
+                return _result(out, own, errors, 1)
+        else:
+            records = _add_document(doc, "record", data, out, rules, errors)
+            return _result(out, own, errors, records)
+    for lineno, chunk in enumerate(data.splitlines(), start=1):
+        if not chunk.strip():
             continue
         try:
             doc = orjson.loads(chunk)
         except orjson.JSONDecodeError as exc:
             records += 1
-            errors.add(where, f"invalid JSON ({exc})", chunk)
+            errors.add(f"line {lineno}", f"invalid JSON ({exc})", chunk)
             continue
-        items = doc if isinstance(doc, list) else [doc]
-        for i, item in enumerate(items, start=1):
-            records += 1
-            try:
-                _add_object(item, builder, rules)
-            except RecordError as exc:
-                item_where = f"{where} item {i}" if isinstance(doc, list) else where
-                errors.add(item_where, str(exc), orjson.dumps(item) if _dumpable(item) else chunk)
-    return finish(builder, errors, records)
+        records += _add_document(doc, f"line {lineno}", chunk, out, rules, errors)
+    return _result(out, own, errors, records)
+
+
+def _result(builder: PointBuilder, own: bool, errors: ErrorCollector, records: int) -> Decoded:
+    if own:
+        return finish(builder, errors, records)
+    return Decoded(points=_EMPTY, errors=errors.errors, records=records)
 
 
 def _dumpable(item: object) -> bool:
@@ -99,3 +141,38 @@ def _dumpable(item: object) -> bool:
     except TypeError:
         return False
     return True
+
+
+def decode_json_messages(values: list[bytes], position: Callable[[int], str], *,
+                         rules: TimeRules = _DEFAULT_RULES, cache: dict | None = None
+                         ) -> tuple[PointBatch, list[tuple[int, Decoded]], int]:
+    """Decode many messages into one batch (the daemon's path): ``(batch, bad, records)``.
+
+    ``bad`` lists ``(index, Decoded)`` for messages with at least one refused record; their
+    good records are in the batch too. Well-formed single objects are handled inline.
+    """
+    b = PointBuilder(cache)
+    add_raw = b.add_raw
+    loads = orjson.loads
+    limit = math.inf if rules.now is None else rules.now + rules.max_future
+    bad: list[tuple[int, Decoded]] = []
+    records = 0
+    for i, data in enumerate(values):
+        try:
+            doc = loads(data)
+        except orjson.JSONDecodeError:
+            doc = None
+        if type(doc) is dict:
+            metric, labels, t, v = doc.get("metric"), doc.get("labels"), doc.get("time"), doc.get("value")
+            if (type(metric) is str and metric and type(t) in _NUM and type(v) in _NUM
+                    and (labels is None or (type(labels) is dict and "__name__" not in labels))):
+                t, v = float(t), float(v)
+                if (_isfinite(v) and -1e11 < t < 1e11 and t <= limit
+                        and add_raw(metric, tuple(labels.items()) if labels else (), t, v)):
+                    records += 1
+                    continue
+        d = decode_json(data, prefix=position(i), rules=rules, builder=b)
+        records += d.records
+        if d.errors:
+            bad.append((i, d))
+    return b.build(), bad, records

@@ -13,6 +13,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 Labels = tuple[tuple[str, str], ...]
+CACHE_LIMIT = 500_000  # raw record identities remembered by a shared PointBuilder cache
 
 
 def _escape_label_value(value: str) -> str:
@@ -109,16 +110,47 @@ class PointBatch:
 
 
 class PointBuilder:
-    """Collects points one record at a time; codecs use it to build a batch."""
+    """Collects points one record at a time; codecs use it to build a batch.
 
-    __slots__ = ("_cache", "keys", "series", "times", "values")
+    ``cache`` (shared across builders by a long-running reader) maps a record's raw
+    (metric, label items) to its series key and meta, so a series seen before costs one
+    dict lookup. A reader should bound it (see :data:`CACHE_LIMIT`).
+    """
 
-    def __init__(self) -> None:
+    __slots__ = ("_cache", "_raw", "keys", "series", "times", "values")
+
+    def __init__(self, cache: dict | None = None) -> None:
         self.keys: list[str] = []
         self.times: list[float] = []
         self.values: list[float] = []
         self.series: dict[str, tuple[str, Labels]] = {}
         self._cache: dict[tuple[str, Labels], str] = {}
+        self._raw: dict[tuple, tuple[str, tuple[str, Labels]]] = {} if cache is None else cache
+        if len(self._raw) > CACHE_LIMIT:
+            self._raw.clear()
+
+    def __len__(self) -> int:
+        return len(self.keys)
+
+    def add_raw(self, metric: str, items: tuple, time: float, value: float) -> bool:
+        """Add with labels as given (``tuple(labels.items())``, any order); False if a label
+        value is not a string (the caller then takes the slow, validating path)."""
+        ident = (metric, items)
+        hit = self._raw.get(ident)
+        if hit is None:
+            if not all(type(v) is str for _k, v in items):
+                return False
+            labels = tuple(sorted((k, v) for k, v in items if v != ""))
+            self.add(metric, labels, time, value)
+            key = self.keys[-1]
+            self._raw[ident] = (key, self.series[key])
+            return True
+        key, meta = hit
+        self.series[key] = meta
+        self.keys.append(key)
+        self.times.append(time)
+        self.values.append(value)
+        return True
 
     def add(self, metric: str, labels: Labels, time: float, value: float) -> None:
         ident = (metric, labels)

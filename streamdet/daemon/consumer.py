@@ -20,10 +20,11 @@ from dataclasses import dataclass, field
 
 from confluent_kafka import Consumer, KafkaError, KafkaException, Message, TopicPartition
 
-from streamdet.codecs import TimeRules, decode_influx, decode_json
+from streamdet.codecs import TimeRules, decode_influx
+from streamdet.codecs.json import decode_json_messages
 from streamdet.config import Config
 from streamdet.core.engine import Engine, SnapshotError
-from streamdet.core.points import PointBatch
+from streamdet.core.points import PointBatch, PointBuilder
 from streamdet.daemon.health import HealthServer, Metrics, reason_code
 from streamdet.daemon.producer import Sink
 from streamdet.daemon.settings import DaemonSettings, redacted
@@ -45,6 +46,7 @@ class PartitionState:
     next_offset: int | None = None  # next offset to read; None until something was read
     dirty: bool = False
     counters: Counter[str] = field(default_factory=Counter)
+    key_cache: dict = field(default_factory=dict)  # raw record identity -> series key
 
 
 class Daemon:
@@ -189,13 +191,25 @@ class Daemon:
 
     # ------------------------------------------------------------ processing
 
-    def _decode(self, msg: Message, rules: TimeRules):
-        prefix = f"{msg.topic()}/{msg.partition()}@{msg.offset()}"
-        value = msg.value() or b""
+    def _decode(self, key: TP, items: list[Message], part: PartitionState, rules: TimeRules) -> PointBatch:
+        """Decode a partition's messages into one batch; dead-letter the messages with bad records."""
+        topic, partition = key
         if self.config.input.format == "influx":
-            return decode_influx(value, prefix=prefix, rules=rules,
-                                 precision=self.config.input.influx_precision)
-        return decode_json(value, prefix=prefix, rules=rules)
+            builder = PointBuilder(part.key_cache)
+            for msg in items:
+                d = decode_influx(msg.value() or b"", prefix=f"{topic}/{partition}@{msg.offset()}",
+                                  rules=rules, precision=self.config.input.influx_precision, builder=builder)
+                self.metrics.records_in.inc(d.records)
+                if d.errors:
+                    self._dead_letter(msg, d.errors)
+            return builder.build()
+        batch, bad, records = decode_json_messages(
+            [m.value() or b"" for m in items], lambda i: f"{topic}/{partition}@{items[i].offset()}",
+            rules=rules, cache=part.key_cache)
+        self.metrics.records_in.inc(records)
+        for i, d in bad:
+            self._dead_letter(items[i], d.errors)
+        return batch
 
     def _process(self, msgs: list[Message]) -> None:
         started = time.monotonic()
@@ -214,14 +228,7 @@ class Daemon:
             part = self.parts.get(key)
             if part is None:  # revoked while the batch was in flight
                 continue
-            batches = []
-            for msg in items:
-                decoded = self._decode(msg, rules)
-                self.metrics.records_in.inc(decoded.records)
-                if decoded.errors:
-                    self._dead_letter(msg, decoded.errors)
-                batches.append(decoded.points)
-            events = part.engine.ingest(PointBatch.concat(batches))
+            events = part.engine.ingest(self._decode(key, items, part, rules))
             self._count(part)
             self.sink.send(events, time.monotonic())
             part.next_offset = items[-1].offset() + 1
@@ -282,9 +289,10 @@ class Daemon:
         self._checkpoint_done = time.monotonic()
         if offsets:
             try:
-                self.consumer.commit(offsets=offsets, asynchronous=False)
+                # Asynchronous: a sync commit would block for as long as the brokers are away.
+                # The checkpoint is durable and carries the offset, and a restart seeks there.
+                self.consumer.commit(offsets=offsets, asynchronous=True)
             except KafkaException as exc:
-                # The checkpoint is durable and carries the offset; a restart seeks there.
                 log.warning("offset commit failed (%s); the checkpoint still covers it", exc)
         return True
 
