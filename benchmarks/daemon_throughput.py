@@ -23,14 +23,12 @@ from confluent_kafka import Consumer, Producer
 from prometheus_client import CollectorRegistry
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
-from tests.integration.kafka import Broker  # noqa: E402
-
-from streamdet.config import parse_config  # noqa: E402
-from streamdet.core.engine import Engine  # noqa: E402
-from streamdet.core.points import PointBatch  # noqa: E402
-from streamdet.daemon.consumer import Daemon  # noqa: E402
-from streamdet.daemon.health import Metrics  # noqa: E402
-from streamdet.daemon.settings import parse_settings  # noqa: E402
+from streamdet.config import parse_config
+from streamdet.core.engine import Engine
+from streamdet.daemon.consumer import Daemon
+from streamdet.daemon.health import Metrics
+from streamdet.daemon.settings import parse_settings
+from tests.integration.kafka import Broker
 
 
 def rss_mib() -> float:
