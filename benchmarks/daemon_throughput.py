@@ -156,6 +156,9 @@ def main() -> None:
                        for t in ("streamdet.breach.opened", "streamdet.breach.closed"))
         print(f"step close -> delivery ack: p50 <= {p50} s, p99 <= {p99} s (histogram bucket bounds, "
               f"{n_events:.0f} events)")
+        hist = [(float(x.labels["le"]), int(x.value)) for fam in metrics.registry.collect() for x in fam.samples
+                if x.name == "streamdet_step_close_to_delivery_seconds_bucket"]
+        print("  cumulative counts by bucket:", ", ".join(f"<={le:g}s: {n}" for le, n in sorted(hist)))
         print(f"peak RSS (this process, daemon + benchmark): {rss_mib():.0f} MiB")
     finally:
         broker.stop()

@@ -58,7 +58,7 @@ class Metrics:
         self.delivery_delay = Histogram(
             f"{NS}_step_close_to_delivery_seconds",
             "Wall time from the step close that decided an event to its delivery acknowledgement",
-            registry=registry, buckets=(0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1, 2.5, 5, 10))
+            registry=registry, buckets=(0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 0.75, 1, 2.5, 5, 10))
 
 
 class _QuietHandler(WSGIRequestHandler):
