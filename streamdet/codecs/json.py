@@ -22,7 +22,7 @@ from streamdet.codecs.common import (
     parse_time,
     parse_value,
 )
-from streamdet.core.points import PointBatch, PointBuilder, normalise_labels
+from streamdet.core.points import KeyCache, PointBatch, PointBuilder, normalise_labels
 
 _DEFAULT_RULES = TimeRules()
 _EMPTY = PointBatch.empty()
@@ -144,15 +144,17 @@ def _dumpable(item: object) -> bool:
 
 
 def decode_json_messages(values: list[bytes], position: Callable[[int], str], *,
-                         rules: TimeRules = _DEFAULT_RULES, cache: dict | None = None
+                         rules: TimeRules = _DEFAULT_RULES, cache: KeyCache | None = None
                          ) -> tuple[PointBatch, list[tuple[int, Decoded]], int]:
     """Decode many messages into one batch (the daemon's path): ``(batch, bad, records)``.
 
     ``bad`` lists ``(index, Decoded)`` for messages with at least one refused record; their
-    good records are in the batch too. Well-formed single objects are handled inline.
+    good records are in the batch too. Well-formed single objects of a series seen before
+    are handled inline: parse, four type checks, one cache lookup.
     """
     b = PointBuilder(cache)
-    add_raw = b.add_raw
+    raw_get = b._raw.get
+    keys_append, times_append, values_append = b.keys.append, b.times.append, b.values.append
     loads = orjson.loads
     limit = math.inf if rules.now is None else rules.now + rules.max_future
     bad: list[tuple[int, Decoded]] = []
@@ -167,10 +169,18 @@ def decode_json_messages(values: list[bytes], position: Callable[[int], str], *,
             if (type(metric) is str and metric and type(t) in _NUM and type(v) in _NUM
                     and (labels is None or (type(labels) is dict and "__name__" not in labels))):
                 t, v = float(t), float(v)
-                if (_isfinite(v) and -1e11 < t < 1e11 and t <= limit
-                        and add_raw(metric, tuple(labels.items()) if labels else (), t, v)):
-                    records += 1
-                    continue
+                if _isfinite(v) and -1e11 < t < 1e11 and t <= limit:
+                    items = tuple(labels.items()) if labels else ()
+                    key = raw_get((metric, items))
+                    if key is not None:
+                        keys_append(key)
+                        times_append(t)
+                        values_append(v)
+                        records += 1
+                        continue
+                    if b.add_raw(metric, items, t, v):
+                        records += 1
+                        continue
         d = decode_json(data, prefix=position(i), rules=rules, builder=b)
         records += d.records
         if d.errors:

@@ -168,7 +168,7 @@ class Engine:
             return []
         self.next_eviction = self.clock + ttl / 8
         n = self.table.n
-        live = np.array([k is not None for k in self.table.keys], dtype=bool)
+        live = self.table.live()
         idle = np.flatnonzero(live & (self.table.last_seen[:n] < self.clock - ttl))
         if idle.shape[0] == 0:
             return []
@@ -432,7 +432,7 @@ class Engine:
     def stats(self) -> dict[str, int]:
         """Gauges about the current state (series, learning series, open breaches, bytes)."""
         n = self.table.n
-        live = np.array([k is not None for k in self.table.keys], dtype=bool)
+        live = self.table.live()
         learning = live & (self.band.n[:n] < self.table.warmup[:n])
         return {
             "series_active": int(live.sum()),

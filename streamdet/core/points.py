@@ -109,25 +109,41 @@ class PointBatch:
         )
 
 
+class KeyCache:
+    """Raw record identity -> series key, and key -> (metric, labels), kept by a long-running
+    reader across batches so a series seen before costs one dict lookup. Bounded."""
+
+    __slots__ = ("meta", "raw")
+
+    def __init__(self) -> None:
+        self.raw: dict[tuple, str] = {}
+        self.meta: dict[str, tuple[str, Labels]] = {}
+
+    def trim(self) -> None:
+        if len(self.raw) > CACHE_LIMIT:
+            self.raw.clear()
+            self.meta.clear()
+
+
 class PointBuilder:
     """Collects points one record at a time; codecs use it to build a batch.
 
-    ``cache`` (shared across builders by a long-running reader) maps a record's raw
-    (metric, label items) to its series key and meta, so a series seen before costs one
-    dict lookup. A reader should bound it (see :data:`CACHE_LIMIT`).
+    With a :class:`KeyCache` the batch's ``series`` mapping is the cache's (it may name more
+    series than the batch holds, which is all the engine needs).
     """
 
     __slots__ = ("_cache", "_raw", "keys", "series", "times", "values")
 
-    def __init__(self, cache: dict | None = None) -> None:
+    def __init__(self, cache: KeyCache | None = None) -> None:
+        if cache is None:
+            cache = KeyCache()
+        cache.trim()
         self.keys: list[str] = []
         self.times: list[float] = []
         self.values: list[float] = []
-        self.series: dict[str, tuple[str, Labels]] = {}
+        self.series: dict[str, tuple[str, Labels]] = cache.meta
         self._cache: dict[tuple[str, Labels], str] = {}
-        self._raw: dict[tuple, tuple[str, tuple[str, Labels]]] = {} if cache is None else cache
-        if len(self._raw) > CACHE_LIMIT:
-            self._raw.clear()
+        self._raw = cache.raw
 
     def __len__(self) -> int:
         return len(self.keys)
@@ -136,17 +152,14 @@ class PointBuilder:
         """Add with labels as given (``tuple(labels.items())``, any order); False if a label
         value is not a string (the caller then takes the slow, validating path)."""
         ident = (metric, items)
-        hit = self._raw.get(ident)
-        if hit is None:
+        key = self._raw.get(ident)
+        if key is None:
             if not all(type(v) is str for _k, v in items):
                 return False
             labels = tuple(sorted((k, v) for k, v in items if v != ""))
             self.add(metric, labels, time, value)
-            key = self.keys[-1]
-            self._raw[ident] = (key, self.series[key])
+            self._raw[ident] = self.keys[-1]
             return True
-        key, meta = hit
-        self.series[key] = meta
         self.keys.append(key)
         self.times.append(time)
         self.values.append(value)

@@ -102,7 +102,12 @@ class SeriesTable(ColumnState):
         self.rule[row] = rule
         return row
 
+    def live(self) -> np.ndarray:
+        """Mask of rows that hold a series (freed rows have no rule)."""
+        return self.rule[: self.n] >= 0
+
     def release(self, rows: np.ndarray) -> None:
+        self.rule[rows] = -1
         for row in rows.tolist():
             key = self.keys[row]
             if key is not None:

@@ -24,7 +24,7 @@ from streamdet.codecs import TimeRules, decode_influx
 from streamdet.codecs.json import decode_json_messages
 from streamdet.config import Config
 from streamdet.core.engine import Engine, SnapshotError
-from streamdet.core.points import PointBatch, PointBuilder
+from streamdet.core.points import KeyCache, PointBatch, PointBuilder
 from streamdet.daemon.health import HealthServer, Metrics, reason_code
 from streamdet.daemon.producer import Sink
 from streamdet.daemon.settings import DaemonSettings, redacted
@@ -46,7 +46,7 @@ class PartitionState:
     next_offset: int | None = None  # next offset to read; None until something was read
     dirty: bool = False
     counters: Counter[str] = field(default_factory=Counter)
-    key_cache: dict = field(default_factory=dict)  # raw record identity -> series key
+    key_cache: KeyCache = field(default_factory=KeyCache)  # raw record identity -> series key
 
 
 class Daemon:
@@ -131,7 +131,7 @@ class Daemon:
                     self.checkpoint(list(self.parts))
                 if now - self._last_probe >= 2.0:
                     self._probe()
-                self._update_gauges()
+                    self._update_gauges()
         except (StateError, SnapshotError, StartupError) as exc:
             log.error("%s", exc)
             code = 2

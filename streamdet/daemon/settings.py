@@ -28,7 +28,7 @@ class DaemonSettings:
     input_topics: tuple[str, ...] = ("metrics",)
     output_topic: str | None = "streamdet-events"
     dead_letter_topic: str | None = "streamdet-dead-letters"
-    batch_size: int = 5000
+    batch_size: int = 20000
     poll_timeout: float = 0.5
     checkpoint_interval: float = 10.0
     session_timeout: float = 45.0
