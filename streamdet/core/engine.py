@@ -18,17 +18,15 @@ step closed at once (a *wave*), returning the breach events those steps decided.
 
 from __future__ import annotations
 
-import hashlib
 import io
 import math
-import struct
 from collections import Counter
 from dataclasses import dataclass, field
 
 import numpy as np
-import orjson
 
 from streamdet.config import Config, Rule
+from streamdet.core import framing
 from streamdet.core.band import Band
 from streamdet.core.blend import Blend
 from streamdet.core.columns import ColumnState
@@ -463,7 +461,6 @@ class Engine:
         np.savez(buf, **arrays)
         body = buf.getvalue()
         header = {
-            "version": SNAPSHOT_VERSION,
             "rows": n,
             "rules": [r.name for r in self.config.rules],
             "lag_resolution": self.config.lag_resolution,
@@ -474,27 +471,16 @@ class Engine:
             "next_eviction": None if math.isinf(self.next_eviction) else self.next_eviction,
             "counters": dict(self.counters),
             "pending": {str(k): v for k, v in self.pending.items()},
-            "sha256": hashlib.sha256(body).hexdigest(),
         }
-        head = orjson.dumps(header)
-        return SNAPSHOT_MAGIC + struct.pack(">II", SNAPSHOT_VERSION, len(head)) + head + body
+        return framing.pack(SNAPSHOT_MAGIC, SNAPSHOT_VERSION, header, body)
 
     @classmethod
     def restore(cls, config: Config, data: bytes, *, record_steps: bool = False) -> Engine:
         """Inverse of :meth:`snapshot`; raises SnapshotError on anything damaged or incompatible."""
-        if not data.startswith(SNAPSHOT_MAGIC) or len(data) < len(SNAPSHOT_MAGIC) + 8:
-            raise SnapshotError("not a streamdet snapshot (bad magic)")
-        version, head_len = struct.unpack_from(">II", data, len(SNAPSHOT_MAGIC))
-        if version != SNAPSHOT_VERSION:
-            raise SnapshotError(f"snapshot version {version}, this build reads {SNAPSHOT_VERSION}")
-        off = len(SNAPSHOT_MAGIC) + 8
         try:
-            header = orjson.loads(data[off:off + head_len])
-        except orjson.JSONDecodeError as exc:
-            raise SnapshotError(f"snapshot header is damaged ({exc})") from None
-        body = data[off + head_len:]
-        if hashlib.sha256(body).hexdigest() != header.get("sha256"):
-            raise SnapshotError("snapshot checksum mismatch (truncated or damaged)")
+            header, body = framing.unpack(data, SNAPSHOT_MAGIC, SNAPSHOT_VERSION, "snapshot")
+        except framing.FrameError as exc:
+            raise SnapshotError(str(exc)) from None
         if header["lag_resolution"] != config.lag_resolution:
             raise SnapshotError("snapshot was taken with a different engine.lag_resolution")
         eng = cls(config, record_steps=record_steps)

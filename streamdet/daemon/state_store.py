@@ -8,15 +8,13 @@ never a silent reset.
 
 from __future__ import annotations
 
-import hashlib
 import os
 import re
-import struct
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Protocol
 
-import orjson
+from streamdet.core import framing
 
 MAGIC = b"SDETCKPT"
 VERSION = 1
@@ -55,10 +53,8 @@ class LocalStateStore:
         return self.dir / f"{_safe(topic)}-{partition}.ckpt"
 
     def save(self, checkpoint: Checkpoint) -> None:
-        header = orjson.dumps({"topic": checkpoint.topic, "partition": checkpoint.partition,
-                               "next_offset": checkpoint.next_offset,
-                               "sha256": hashlib.sha256(checkpoint.snapshot).hexdigest()})
-        data = MAGIC + struct.pack(">II", VERSION, len(header)) + header + checkpoint.snapshot
+        data = framing.pack(MAGIC, VERSION, {"topic": checkpoint.topic, "partition": checkpoint.partition,
+                                             "next_offset": checkpoint.next_offset}, checkpoint.snapshot)
         final = self.path(checkpoint.topic, checkpoint.partition)
         tmp = final.with_suffix(".tmp")
         with open(tmp, "wb") as fh:
@@ -79,19 +75,10 @@ class LocalStateStore:
         except FileNotFoundError:
             return None
         hint = f"(start this partition fresh with --fresh-partition {topic}:{partition})"
-        if not data.startswith(MAGIC) or len(data) < len(MAGIC) + 8:
-            raise StateError(f"{path}: not a streamdet checkpoint {hint}")
-        version, head_len = struct.unpack_from(">II", data, len(MAGIC))
-        if version != VERSION:
-            raise StateError(f"{path}: checkpoint version {version}, this build reads {VERSION} {hint}")
-        off = len(MAGIC) + 8
         try:
-            header = orjson.loads(data[off:off + head_len])
-        except orjson.JSONDecodeError:
-            raise StateError(f"{path}: checkpoint header is damaged {hint}") from None
-        snapshot = data[off + head_len:]
-        if hashlib.sha256(snapshot).hexdigest() != header.get("sha256"):
-            raise StateError(f"{path}: checksum mismatch, the file is truncated or damaged {hint}")
+            header, snapshot = framing.unpack(data, MAGIC, VERSION, "checkpoint")
+        except framing.FrameError as exc:
+            raise StateError(f"{path}: {exc} {hint}") from None
         if header.get("topic") != topic or header.get("partition") != partition:
             raise StateError(f"{path}: belongs to {header.get('topic')}:{header.get('partition')} {hint}")
         return Checkpoint(topic, partition, int(header["next_offset"]), snapshot)
