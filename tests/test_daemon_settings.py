@@ -85,3 +85,17 @@ def test_check_validates_daemon_sections(tmp_path, capsys):
     f.write_text("kafka:\n  output_topic: 7\n")
     assert main(["check", str(f)]) == 2
     assert "kafka.output_topic: expected a topic name or null" in capsys.readouterr().err
+
+
+def test_json_logs_are_one_object_per_line(capsys):
+    import orjson
+
+    from streamdet.daemon.logs import setup_logging
+
+    setup_logging("json", "info")
+    logging.getLogger("streamdet.daemon").warning("broker %s unreachable", "127.0.0.1:1")
+    line = capsys.readouterr().err.strip().splitlines()[-1]
+    doc = orjson.loads(line)
+    assert doc["level"] == "warning" and doc["message"] == "broker 127.0.0.1:1 unreachable"
+    assert doc["logger"] == "streamdet.daemon" and "time" in doc
+    setup_logging("text", "info")
