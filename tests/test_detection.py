@@ -46,6 +46,8 @@ def test_nile_level_shift_opens_then_relearns():
     assert all(o >= 1899 for o in opened)  # nothing before the shift
     assert closed and closed[0] <= 1899 + 8 + 3 + 3, closed  # relearn (8) + clear (3) + slack
     assert eng.counters["relearns"] >= 1
+    first_close = next(e for e in events if e.type == CLOSED)
+    assert first_close.reason == "the band re-levelled after a lasting shift"
     log = step_log(eng, "nile")
     after = log["expected"][(log["start"] >= datetime(1915, 1, 1, tzinfo=UTC).timestamp())]
     assert abs(np.mean(after) - 850) < 100  # the band re-levelled to the new mean

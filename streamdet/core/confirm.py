@@ -25,6 +25,7 @@ class Transitions:
     closed: np.ndarray
     relearn: np.ndarray
     relearn_delta: np.ndarray
+    closed_after_relearn: np.ndarray  # closed, and the band had re-levelled while it was open
 
 
 class Confirm(ColumnState):
@@ -39,6 +40,7 @@ class Confirm(ColumnState):
         "worst": ("f4", (), 0.0),  # score furthest from 0 while open
         "run": ("i4", (), 0),  # signed run length outside on one side
         "run_offset": ("f8", (), 0.0),
+        "relearned": ("i1", (), 0),  # the open breach saw a re-level
     }
 
     def step(self, rows: np.ndarray, sel: slice | np.ndarray,
@@ -69,6 +71,9 @@ class Confirm(ColumnState):
             worst = np.where(opened, score, worst)
             state = np.where(opened, np.sign(side).astype(np.int8), state)
             clear_run = np.where(opened, 0, clear_run)
+        relearned = self.relearned[r]
+        closed_after_relearn = closed & (relearned != 0)
+        relearned = np.where(closed, 0, relearned)
         state = np.where(closed, 0, state)
         bits = np.where(closed, 0, bits)
         clear_run = np.where(closed, 0, clear_run)
@@ -96,4 +101,5 @@ class Confirm(ColumnState):
         run = np.where(relearn, 0, run)
         self.run[r] = run
         self.run_offset[r] = np.where(relearn, 0.0, offset)
-        return Transitions(opened, closed, relearn, delta)
+        self.relearned[r] = np.where(relearn & (state != 0), 1, relearned)
+        return Transitions(opened, closed, relearn, delta, closed_after_relearn)

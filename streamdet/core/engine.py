@@ -356,7 +356,9 @@ class Engine:
                 if trans.opened[i]:
                     events.append(self._opened_event(int(rows[i]), i, values))
                 else:
-                    events.append(self._closed_event(int(rows[i]), reason="back inside the band",
+                    reason = ("the band re-levelled after a lasting shift"
+                              if trans.closed_after_relearn[i] else "back inside the band")
+                    events.append(self._closed_event(int(rows[i]), reason=reason,
                                                      start=float(start[i]), step=float(step[i]),
                                                      values=values, i=i))
             self.counters["events_opened"] += int(trans.opened.sum())
