@@ -123,8 +123,8 @@ def test_rows_are_independent(factory):
     f = factory(3)
     ctx = feed(f)
     before = f.predict(ctx)[0][:, 1].copy()
-    sub = StepContext(ctx.rows[[0]], ctx.rule[[0]], ctx.start[[0]] + 600, ctx.step[[0]], ctx.age[[0]] + 600,
-                      {p: b[[0]] for p, b in ctx.buckets.items()})
+    sub = StepContext.build(ctx.rows[[0]], ctx.rule[[0]], ctx.start[[0]] + 600, np.full(1, 600.0),
+                            ctx.age[[0]] + 600)
     f.update(sub, np.array([1e6]))
     np.testing.assert_array_equal(f.predict(ctx)[0][:, 1], before)
 

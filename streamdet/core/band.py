@@ -43,7 +43,7 @@ class Band(ColumnState):
         self.memory_weeks = as_arr(memory_weeks)
 
     def _ratio(self, ctx: StepContext) -> np.ndarray:
-        ratio = self.ratio[ctx.rows, ctx.buckets[168]].astype(np.float64)
+        ratio = self.ratio[ctx.at(168)].astype(np.float64)
         return np.where(ctx.step <= 3600.0, ratio, 1.0)
 
     def scale_of(self, ctx: StepContext) -> np.ndarray:
@@ -67,8 +67,8 @@ class Band(ColumnState):
         rate = np.maximum(1.0 / np.maximum(100.0, steps_per_day), 1.0 / (n + 1.0))
         new_scale = scale + rate * (a - scale)
         # Hour-of-week ratio to the series' scale, learnt with a prior of ratio 1.
-        b = ctx.buckets[168]
-        ratio = self.ratio[ctx.rows, b].astype(np.float64)
+        at = ctx.at(168)
+        ratio = self.ratio[at].astype(np.float64)
         per_bucket = np.maximum(3600.0 / ctx.step, 1.0)
         memory = per_rule(self.memory_weeks, ctx.rule) * (WEEK / HOUR_OF_WEEK.cycle) * per_bucket
         g = np.maximum(1.0 / np.maximum(memory, MIN_RATIO_MEMORY),
@@ -76,6 +76,6 @@ class Band(ColumnState):
         with np.errstate(invalid="ignore", divide="ignore"):
             target = np.where(scale > 0, np.minimum(a / scale, 20.0), 1.0)
         learn = (n >= 10) & (ctx.step <= 3600.0)
-        self.ratio[ctx.rows, b] = np.where(learn, ratio + g * (target - ratio), ratio).astype(np.float16)
+        self.ratio[at] = np.where(learn, ratio + g * (target - ratio), ratio).astype(np.float16)
         self.scale[r] = new_scale.astype(np.float32)
         self.n[r] = np.minimum(n + 1, 2**31 - 2)

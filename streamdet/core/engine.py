@@ -375,9 +375,8 @@ class Engine:
         if has_centre.all():
             self.band.update(ctx, y_fit - centre)
         elif has_centre.any():
-            sub = StepContext(rows[has_centre], rule[has_centre], start[has_centre],
-                              step[has_centre], ctx.age[has_centre],
-                              {p: b[has_centre] for p, b in ctx.buckets.items()})
+            sub = StepContext.build(rows[has_centre], rule[has_centre], start[has_centre],
+                                    step[has_centre], ctx.age[has_centre])
             self.band.update(sub, (y_fit - centre)[has_centre])
         if trans.relearn.any():
             rr = rows[trans.relearn]

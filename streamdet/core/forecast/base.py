@@ -54,9 +54,9 @@ class StepContext:
     rows: np.ndarray  # int64 row per series
     rule: np.ndarray  # rule index per row
     start: np.ndarray  # step start, epoch seconds
-    step: np.ndarray  # step length, seconds
+    step: np.ndarray | float  # step length, seconds (a float when all rows share it)
     age: np.ndarray  # start minus the series' first step start, seconds
-    buckets: dict[int, np.ndarray] = field(default_factory=dict)
+    buckets: dict[int, np.ndarray | int] = field(default_factory=dict)  # int: shared by all rows
     # The value seasonal profiles learn from: clipped more loosely than the level's input, so a
     # shape that recurs is learnt in full while one spike moves a bucket by a bounded amount.
     shape_y: np.ndarray | None = None
@@ -68,10 +68,26 @@ class StepContext:
         """Index for 1-D columns: a slice where possible, else the row array."""
         return self.rows if self.sel is None else self.sel
 
+    def at(self, period: int) -> tuple:
+        """Index of this step's bucket in a ``(rows, period)`` column: a strided view when all
+        rows share the bucket and are contiguous, a fancy index otherwise."""
+        b = self.buckets[period]
+        if isinstance(b, int):
+            return (self.r, b)
+        return (self.rows, b)
+
     @classmethod
     def build(cls, rows, rule, start, step, age) -> StepContext:
-        return cls(rows, rule, start, step, age,
-                   {168: hour_of_week(start), 24: hour_of_day(start)}, sel=as_index(rows))
+        """Context of a wave. When every row's step starts at the same time (the usual case:
+        steps are aligned to multiples of their length) the buckets are plain ints."""
+        if start.shape[0] and start[0] == start.min() == start.max():
+            t = start[:1]
+            buckets = {168: int(hour_of_week(t)[0]), 24: int(hour_of_day(t)[0])}
+        else:
+            buckets = {168: hour_of_week(start), 24: hour_of_day(start)}
+        if step.shape[0] and step[0] == step.min() == step.max():
+            step = float(step[0])
+        return cls(rows, rule, start, step, age, buckets, sel=as_index(rows))
 
     @classmethod
     def sequence(cls, n: int, *, period: int | None = None, step: float = 1.0) -> list[StepContext]:

@@ -49,7 +49,7 @@ class SeasonalNaive(Forecaster):
         r = ctx.rows
         cell = np.floor(ctx.start / self.resolution).astype(np.int64)
         values = np.stack([self._lag(r, cell, self.day_cells), self._lag(r, cell, self.cells)])
-        ready = ~np.isnan(values) & (ctx.step <= self.resolution)[None, :]
+        ready = ~np.isnan(values) & (np.asarray(ctx.step) <= self.resolution)
         return np.nan_to_num(values), ready
 
     def update(self, ctx: StepContext, y: np.ndarray) -> None:

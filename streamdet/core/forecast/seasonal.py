@@ -78,7 +78,7 @@ class HoltWinters(DampedHolt):
         out = np.zeros(r.shape[0])
         found = np.zeros(r.shape[0], dtype=bool)
         for p in self.profiles:
-            s = getattr(self, f"s{p.period}")[r, ctx.buckets[p.period]]
+            s = getattr(self, f"s{p.period}")[ctx.at(p.period)]
             ok = ~np.isnan(s) & ~found
             if p.cycle is not None:
                 ok &= (ctx.age >= p.cycle) & (ctx.step <= p.bucket_seconds)
@@ -100,8 +100,8 @@ class HoltWinters(DampedHolt):
         resid = shape_y - base
         for p in self.profiles:
             arr = getattr(self, f"s{p.period}")
-            b = ctx.buckets[p.period]
-            old = arr[ctx.rows, b].astype(np.float64)
+            at = ctx.at(p.period)
+            old = arr[at].astype(np.float64)
             start = np.where(np.isnan(old), np.where(found, season, resid), old)
             g = self._rate(ctx, p)
-            arr[ctx.rows, b] = g * resid + (1.0 - g) * start
+            arr[at] = g * resid + (1.0 - g) * start
