@@ -128,6 +128,9 @@ class Engine:
         self.rule_clear = np.array([r.clear_steps for r in rules], np.int64)
         self.rule_direction = np.array([DIRECTION_CODES[r.direction] for r in rules], np.int64)
         self.rule_width = np.array([r.width for r in rules])
+        self.any_auto = any(r.step is None for r in rules)
+        self.any_lateness = any(r.lateness > 0 for r in rules)
+        self.any_counter = bool(self.rule_counter.any())
         self.clock = -math.inf
         self.counters: Counter[str] = Counter()
         self.pending: dict[int, list[tuple[float, float]]] = {}
@@ -205,29 +208,38 @@ class Engine:
         seen_clock = running_clock(self.clock, t)
         self.clock = max(self.clock, float(t.max()))
         step = tab.step[rows]
-        unknown = np.isnan(step)
-        released = self._buffer_auto(rows[unknown], t[unknown], v[unknown]) if unknown.any() else None
-        known = ~unknown
-        rows, t, v, step, seen_clock = rows[known], t[known], v[known], step[known], seen_clock[known]
+        released = None
+        if self.any_auto:
+            unknown = np.isnan(step)
+            if unknown.any():
+                released = self._buffer_auto(rows[unknown], t[unknown], v[unknown])
+                known = ~unknown
+                rows, t, v, step, seen_clock = (rows[known], t[known], v[known], step[known],
+                                                seen_clock[known])
         k = np.floor(t / step).astype(np.int64)
-        late = (k + 1) * step + tab.lateness[rows] <= seen_clock
-        n_late = int(late.sum())
+        end = (k + 1) * step
+        late = (end + tab.lateness[rows] if self.any_lateness else end) <= seen_clock
+        n_late = int(np.count_nonzero(late))
         if n_late:
             self.counters["points_late"] += n_late
             keep = ~late
-            rows, t, v = rows[keep], t[keep], v[keep]
+            rows, t, v, k = rows[keep], t[keep], v[keep], k[keep]
         seq = np.arange(rows.shape[0], dtype=np.int64)
+        reorder = released is not None
         if released is not None:
             rr, rt, rv = released
             rows = np.concatenate([rr, rows])
             t = np.concatenate([rt, t])
             v = np.concatenate([rv, v])
             seq = np.concatenate([np.arange(rr.shape[0]) - rr.shape[0], seq])
-        counter = self.rule_counter[tab.rule[rows]]
-        if counter.any():
-            rows, t, v, seq = self._counters_to_rates(rows, t, v, seq, counter)
+        if self.any_counter:
+            counter = self.rule_counter[tab.rule[rows]]
+            if counter.any():
+                rows, t, v, seq = self._counters_to_rates(rows, t, v, seq, counter)
+                reorder = True
         self.counters["points_accepted"] += rows.shape[0]
-        k = np.floor(t / tab.step[rows]).astype(np.int64)
+        if reorder:
+            k = np.floor(t / tab.step[rows]).astype(np.int64)
         closed = self.steps.merge(rows, k, t, v, seq, self._agg_of, tab.step.__getitem__,
                                   tab.lateness.__getitem__, self.clock)
         return self._judge_all(closed) + self._evict()
@@ -291,8 +303,8 @@ class Engine:
     def _judge_all(self, closed: ClosedSteps) -> list[BreachEvent]:
         tab = self.table
         n = tab.n
-        due = self.steps.due(self.clock, n, self.rule_agg[np.maximum(tab.rule[:n], 0)],
-                             np.nan_to_num(tab.step[:n], nan=np.inf), tab.lateness[:n])
+        # NaN steps (still being inferred) have no open step, so compare false and never close.
+        due = self.steps.due(self.clock, n, self._agg_of, tab.step[:n], tab.lateness[:n])
         if len(due):
             rows = np.concatenate([closed.rows, due.rows])
             k = np.concatenate([closed.k, due.k])

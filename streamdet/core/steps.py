@@ -179,9 +179,11 @@ class Steps(ColumnState):
         self.k[rows, slot] = k
         return True
 
-    def due(self, clock: float, n: int, agg: np.ndarray, step: np.ndarray,
-            lateness: np.ndarray) -> ClosedSteps:
-        """Close open steps of rows ``0..n-1`` whose end plus lateness the clock has passed."""
+    def due(self, clock: float, n: int, agg, step: np.ndarray, lateness: np.ndarray) -> ClosedSteps:
+        """Close open steps of rows ``0..n-1`` whose end plus lateness the clock has passed.
+
+        ``agg(rows)`` gives the aggregation code of rows; ``step`` and ``lateness`` are per row.
+        """
         k0 = self.k[:n, 0]
         ends0 = (k0 + 1) * step + lateness
         due0 = (k0 >= 0) & (ends0 <= clock)
@@ -192,9 +194,10 @@ class Steps(ColumnState):
         due1 = (k1 >= 0) & ((k1 + 1) * step[rows] + lateness[rows] <= clock)
         out_r = [rows, rows[due1]]
         out_k = [k0[rows], k1[due1]]
+        code = agg(rows)
         out_v = [
-            _finalise(self.acc[rows, 0], self.cnt[rows, 0], agg[rows]),
-            _finalise(self.acc[rows[due1], 1], self.cnt[rows[due1], 1], agg[rows[due1]]),
+            _finalise(self.acc[rows, 0], self.cnt[rows, 0], code),
+            _finalise(self.acc[rows[due1], 1], self.cnt[rows[due1], 1], code[due1]),
         ]
         # Slot 1 moves to slot 0 where only slot 0 closed; both clear where both closed.
         keep = rows[~due1]

@@ -37,6 +37,17 @@ def start(config_path, log_path):
                             stdout=open(log_path, "ab"), stderr=subprocess.STDOUT)
 
 
+def stop(proc, timeout=15):
+    """SIGTERM and wait; a process that does not exit is killed (never left behind) and fails."""
+    proc.send_signal(signal.SIGTERM)
+    try:
+        return proc.wait(timeout)
+    except subprocess.TimeoutExpired:
+        proc.kill()
+        proc.wait(5)
+        raise
+
+
 def metric(port, name, labels=""):
     try:
         text = urllib.request.urlopen(f"http://127.0.0.1:{port}/metrics", timeout=2).read().decode()
@@ -78,8 +89,7 @@ def test_kill_9_and_restart_loses_nothing(broker, tmp_path):
         proc = start(cfg, log)
         assert wait_for(lambda: len(broker.read_all(topics[1], idle=1.0)) >= len(expected), timeout=90)
     finally:
-        proc.send_signal(signal.SIGTERM)
-        proc.wait(15)
+        stop(proc)
     msgs = broker.read_all(topics[1])
     ids = Counter(m.value() for m in msgs)
     got = {m.value(): m for m in msgs}
@@ -133,8 +143,7 @@ def test_frozen_broker_not_ready_then_resumes_without_loss(tmp_path):
             expected = replay_events(points)
             msgs = b.read_all(topics[1], expect=len(expected))
         finally:
-            proc.send_signal(signal.SIGTERM)
-            proc.wait(15)
+            stop(proc)
         import orjson
 
         assert {orjson.loads(m.value())["id"] for m in msgs} == {e.id for e in expected}
@@ -162,6 +171,5 @@ def test_broker_absent_at_start_then_started(tmp_path):
             (tmp_path / "log").read_text()[-3000:])
         assert wait_for(lambda: status(port, "/readyz") == 200, timeout=20)
     finally:
-        proc.send_signal(signal.SIGTERM)
-        proc.wait(15)
+        stop(proc)
         b.stop()
