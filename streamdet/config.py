@@ -13,6 +13,7 @@ from __future__ import annotations
 import fnmatch
 import math
 import re
+import zoneinfo
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -134,6 +135,7 @@ class Rule:
     width: float = 3.0
     min_width: float = 0.0
     scale_floor: float = 0.5
+    timezone: str = "UTC"  # IANA name; hour-of-day and hour-of-week buckets follow local time
     direction: str = "both"
     confirm_steps: int = 5
     confirm_fraction: float = 0.6
@@ -305,6 +307,16 @@ def _unit_interval(s: _Section, name: str, default: float) -> float:
     return s.number(name, default, lo=0.0, hi=1.0, lo_open=True)
 
 
+def _timezone(s: _Section) -> str:
+    name = s.get("timezone", "UTC")
+    try:
+        zoneinfo.ZoneInfo(str(name))
+    except (zoneinfo.ZoneInfoNotFoundError, ValueError):
+        s.bad("timezone", f"unknown time zone {name!r}; use an IANA name such as Europe/Berlin or UTC")
+        return "UTC"
+    return str(name)
+
+
 def _parse_match(s: _Section) -> Match:
     metric = s.text("metric", "*")
     labels_sec = s.section("labels")
@@ -408,6 +420,7 @@ def _parse_rule(s: _Section, index: int) -> Rule:
         width=s.number("width", d.width, lo=0.0, lo_open=True),
         min_width=s.number("min_width", d.min_width, lo=0.0),
         scale_floor=s.number("scale_floor", d.scale_floor, lo=0.0, hi=1.0),
+        timezone=_timezone(s),
         direction=s.choice("direction", d.direction, DIRECTIONS),
         confirm_steps=confirm_steps,
         confirm_fraction=confirm_fraction,

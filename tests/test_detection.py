@@ -129,3 +129,33 @@ def test_weekday_spike_learned_unusual_hour_flagged_weekend_flatter():
     weekday_2pm = log["expected"][in_week3 & (day < 5) & (hour == 14)].mean()
     weekend_2pm = log["expected"][in_week3 & (day >= 5) & (hour == 14)].mean()
     assert weekday_2pm > 60 and abs(weekend_2pm - 50) < 3, (weekday_2pm, weekend_2pm)
+
+
+def test_local_time_zone_keeps_a_daily_shape_across_daylight_saving():
+    # Reference: the IANA tz database through Python's zoneinfo (Europe/Berlin moved from UTC+1 to
+    # UTC+2 on 2024-03-31). A shop's busy hour, 09:00-10:00 local time every day, moves by an hour
+    # in UTC at the switch. With `timezone: Europe/Berlin` it stays expected; in UTC it breaches.
+    from zoneinfo import ZoneInfo
+
+    berlin = ZoneInfo("Europe/Berlin")
+    t0 = datetime(2024, 3, 11, tzinfo=UTC).timestamp()
+    t = t0 + np.arange(35 * 288) * 300.0
+    local_hour = np.array([datetime.fromtimestamp(x, berlin).hour for x in t])
+    rng = np.random.default_rng(5)
+    y = 50 + rng.normal(0, 1, t.size) + np.where(local_hour == 9, 20.0, 0.0)
+    switch = datetime(2024, 3, 31, 1, tzinfo=UTC).timestamp()
+    after = []
+    for tz in ("Europe/Berlin", "UTC"):
+        _, events = run({"rules": [{"name": "shop", "step": "5m", "timezone": tz}]}, "orders", t, y)
+        after.append([e.step_start for e in events if e.type == OPENED and e.step_start >= switch])
+    assert after[0] == []
+    assert len(after[1]) >= 1
+
+
+def test_unknown_time_zone_is_a_config_error():
+    import pytest
+
+    from streamdet.config import ConfigError, parse_config
+
+    with pytest.raises(ConfigError, match=r"rules\[0\]\.timezone: unknown time zone 'Mars/Olympus'"):
+        parse_config({"rules": [{"name": "x", "timezone": "Mars/Olympus"}]})

@@ -20,8 +20,10 @@ from __future__ import annotations
 
 import io
 import math
+import zoneinfo
 from collections import Counter
 from dataclasses import dataclass, field
+from datetime import datetime
 
 import numpy as np
 
@@ -131,6 +133,8 @@ class Engine:
         self.any_auto = any(r.step is None for r in rules)
         self.any_lateness = any(r.lateness > 0 for r in rules)
         self.any_counter = bool(self.rule_counter.any())
+        # Rules whose hours follow a local time zone (index -> zone); empty: all UTC.
+        self.zones = {i: zoneinfo.ZoneInfo(r.timezone) for i, r in enumerate(rules) if r.timezone != "UTC"}
         self.clock = -math.inf
         self.counters: Counter[str] = Counter()
         self.pending: dict[int, list[tuple[float, float]]] = {}
@@ -260,6 +264,22 @@ class Engine:
         finally:
             self.clock = saved
 
+    def _local_time(self, rule: np.ndarray, start: np.ndarray) -> np.ndarray:
+        """Step starts shifted by their rule's UTC offset at that instant (DST included).
+
+        The zone database is asked once per distinct (rule, start) pair of the wave.
+        """
+        local = start.copy()
+        for i, zone in self.zones.items():
+            mask = rule == i
+            if not mask.any():
+                continue
+            uniq, inv = np.unique(start[mask], return_inverse=True)
+            offsets = np.array([datetime.fromtimestamp(t, zone).utcoffset().total_seconds()
+                                for t in uniq.tolist()])
+            local[mask] = start[mask] + offsets[inv]
+        return local
+
     def _agg_of(self, rows: np.ndarray) -> np.ndarray:
         return self.rule_agg[self.table.rule[rows]]
 
@@ -340,7 +360,8 @@ class Engine:
         first = tab.first[sel]
         first = np.where(np.isnan(first), start, first)
         tab.first[sel] = first
-        ctx = StepContext.build(rows, rule, start, step, start - first)
+        local = self._local_time(rule, start) if self.zones else None
+        ctx = StepContext.build(rows, rule, start, step, start - first, local)
         outs = [fc.predict(ctx) for fc in self.forecasters]
         preds = np.concatenate([o[0] for o in outs])
         ready = np.concatenate([o[1] for o in outs]) & self.member_enabled[:, rule]
@@ -388,7 +409,8 @@ class Engine:
             self.band.update(ctx, y_fit - centre)
         elif has_centre.any():
             sub = StepContext.build(rows[has_centre], rule[has_centre], start[has_centre],
-                                    step[has_centre], ctx.age[has_centre])
+                                    step[has_centre], ctx.age[has_centre],
+                                    None if local is None else local[has_centre])
             self.band.update(sub, (y_fit - centre)[has_centre])
         if trans.relearn.any():
             rr = rows[trans.relearn]

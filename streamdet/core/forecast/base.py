@@ -77,14 +77,16 @@ class StepContext:
         return (self.rows, b)
 
     @classmethod
-    def build(cls, rows, rule, start, step, age) -> StepContext:
-        """Context of a wave. When every row's step starts at the same time (the usual case:
+    def build(cls, rows, rule, start, step, age, local: np.ndarray | None = None) -> StepContext:
+        """Context of a wave. ``local`` is the step start in the series' local time (UTC when
+        omitted); buckets follow it. When every row's bucket time is the same (the usual case:
         steps are aligned to multiples of their length) the buckets are plain ints."""
-        if start.shape[0] and start[0] == start.min() == start.max():
-            t = start[:1]
+        clock = start if local is None else local
+        if clock.shape[0] and clock[0] == clock.min() == clock.max():
+            t = clock[:1]
             buckets = {168: int(hour_of_week(t)[0]), 24: int(hour_of_day(t)[0])}
         else:
-            buckets = {168: hour_of_week(start), 24: hour_of_day(start)}
+            buckets = {168: hour_of_week(clock), 24: hour_of_day(clock)}
         if step.shape[0] and step[0] == step.min() == step.max():
             step = float(step[0])
         return cls(rows, rule, start, step, age, buckets, sel=as_index(rows))
