@@ -11,8 +11,6 @@ from collections.abc import Iterable
 from datetime import UTC, datetime
 from pathlib import Path
 
-import numpy as np
-
 from streamdet.core.engine import Engine
 from streamdet.events import CLOSED, OPENED, BreachEvent
 
@@ -90,6 +88,3 @@ def plot_series(engine: Engine, events: list[BreachEvent], out_dir: str | Path,
         written.append(path)
     return written
 
-
-def finite(a: np.ndarray) -> np.ndarray:
-    return a[np.isfinite(a)]

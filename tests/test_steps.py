@@ -100,3 +100,14 @@ def test_events_do_not_depend_on_batching(cuts, seed):
     parts += eng.finish()
     assert sorted(e.id for e in parts) == sorted(e.id for e in whole)
     assert len(whole) >= 2
+
+
+def test_advance_closes_steps_of_quiet_series():
+    # Event time can be moved on without points (an input known to be idle up to a time).
+    eng = Engine(parse_config({"rules": [{"name": "r"}]}), record_steps=True)
+    eng.ingest(batch("s", [10, 20], [1, 3]))
+    assert eng.counters["steps_closed"] == 0
+    assert eng.advance(30) == [] and eng.counters["steps_closed"] == 0  # not past the step end
+    eng.advance(60)
+    assert closed_values(eng) == ([0.0], [2.0])
+    assert eng.advance(10) == []  # time never goes back
