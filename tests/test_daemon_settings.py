@@ -25,6 +25,11 @@ def test_defaults_and_validation():
     assert "health.address: expected host:port" in text
 
 
+def test_daemon_refuses_csv_input():
+    with pytest.raises(ConfigError, match=r"input\.format: the daemon reads json or influx"):
+        parse_settings(parse_config({"input": {"format": "csv"}}))
+
+
 def test_environment_overrides(tmp_path):
     cfg_file = tmp_path / "c.yaml"
     cfg_file.write_text("kafka:\n  bootstrap_servers: file:9092\nrules:\n  - name: all\n")

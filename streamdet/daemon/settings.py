@@ -138,6 +138,8 @@ def parse_settings(config: Config) -> DaemonSettings:
     kw["log_format"] = lg.choice("format", d.log_format, ("text", "json"))
     kw["log_level"] = lg.choice("level", d.log_level, ("debug", "info", "warning", "error"))
     lg.done()
+    if config.input.format == "csv":
+        problems.append("input.format: the daemon reads json or influx messages; csv is for replay")
     if problems:
         raise ConfigError(problems)
     return DaemonSettings(**kw)

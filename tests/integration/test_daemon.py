@@ -21,9 +21,9 @@ from tests.integration.streams import DAEMON_RULES, as_batch, as_messages, water
 pytestmark = pytest.mark.broker
 
 
-def make_daemon(broker, tmp_path, topics, *, extra=None, registry=None, **kw):
+def make_daemon(broker, tmp_path, topics, *, extra=None, registry=None, sections=None, **kw):
     inp, out, dlq = topics
-    cfg = parse_config({**DAEMON_RULES, "kafka": {
+    cfg = parse_config({**DAEMON_RULES, **(sections or {}), "kafka": {
         "bootstrap_servers": broker.bootstrap, "group_id": unique("g"), "input_topics": [inp],
         "output_topic": out, "dead_letter_topic": dlq, "session_timeout": "6s",
         "checkpoint_interval": "1s", "poll_timeout": "0.2s", **(extra or {})},
@@ -147,3 +147,21 @@ def test_events_file_sink_and_corrupt_checkpoint(broker, tmp_path):
                             extra={"group_id": group}, fresh_partitions=[(topics[0], 0)])
     with Running(fresh):
         assert wait_for(lambda: m2.registry.get_sample_value("streamdet_ready") == 1)
+
+
+def test_influx_line_protocol_input(broker, tmp_path):
+    topics = (unique("in"), unique("out"), unique("dlq"))
+    broker.create_topics(*topics)
+    points = waterflow_points(sites=1)
+    # Line protocol, ten lines per message; field "flow" makes the series waterflow_flow.
+    lines = [f"waterflow,site={p['labels']['site']} flow={p['value']} {int(p['time'] * 1e9)}" for p in points]
+    msgs = [(b"waterflow", "\n".join(lines[i:i + 10]).encode()) for i in range(0, len(lines), 10)]
+    broker.produce(topics[0], msgs)
+    daemon, metrics = make_daemon(broker, tmp_path, topics, sections={"input": {"format": "influx"}})
+    with Running(daemon):
+        assert wait_for(lambda: metrics.registry.get_sample_value("streamdet_points_accepted_total")
+                        == len(points))
+    renamed = [{**p, "metric": "waterflow_flow"} for p in points]
+    expected = replay_events(renamed)
+    got = [parse_cloudevent(m.value()) for m in broker.read_all(topics[1], expect=len(expected))]
+    assert sorted(d["id"] for d in got) == sorted(e.id for e in expected) and len(expected) == 6
