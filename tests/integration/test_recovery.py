@@ -74,7 +74,7 @@ def test_kill_9_and_restart_loses_nothing(broker, tmp_path):
     broker.produce(topics[0], as_messages(points))
     expected = replay_events(points)
     port = free_port()
-    cfg = write_config(tmp_path / "cfg.yaml", broker, topics, tmp_path / "state", port, batch_size=200)
+    cfg = write_config(tmp_path / "cfg.yaml", broker, topics, tmp_path / "state", port, batch_size=50)
     log = tmp_path / "daemon.log"
     proc = start(cfg, log)
     try:
