@@ -128,5 +128,10 @@ class ErrorCollector:
         self.errors.append(DecodeError(position=position, reason=reason, record=shorten(record)))
 
 
-def finish(builder: PointBuilder, errors: ErrorCollector, records: int) -> Decoded:
-    return Decoded(points=builder.build(), errors=errors.errors, records=records)
+_EMPTY = PointBatch.empty()
+
+
+def finish(builder: PointBuilder, errors: ErrorCollector, records: int, *, own: bool = True) -> Decoded:
+    """The decode result; with a caller's builder (``own=False``) the points stay in it."""
+    points = builder.build() if own else _EMPTY
+    return Decoded(points=points, errors=errors.errors, records=records)

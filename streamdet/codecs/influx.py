@@ -10,7 +10,7 @@ fields are ignored (a line with no numeric field at all is an error).
 from __future__ import annotations
 
 from streamdet.codecs.common import Decoded, ErrorCollector, RecordError, TimeRules, finish
-from streamdet.core.points import PointBatch, PointBuilder
+from streamdet.core.points import PointBuilder
 
 _PRECISION = {"s": 1.0, "ms": 1e3, "us": 1e6, "ns": 1e9}
 _TRUE = {"t", "T", "true", "True", "TRUE"}
@@ -173,6 +173,4 @@ def decode_influx(
             continue
         for metric, labels, t, v in points:
             builder.add(metric, labels, t, v)
-    if not own:
-        return Decoded(points=PointBatch.empty(), errors=errors.errors, records=records)
-    return finish(builder, errors, records)
+    return finish(builder, errors, records, own=own)

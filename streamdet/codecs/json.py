@@ -25,22 +25,31 @@ from streamdet.codecs.common import (
 from streamdet.core.points import KeyCache, PointBatch, PointBuilder, normalise_labels
 
 _DEFAULT_RULES = TimeRules()
-_EMPTY = PointBatch.empty()
 _NUM = (int, float)
 _isfinite = math.isfinite
 
 
+def _add_fast(obj: object, builder: PointBuilder, limit: float) -> bool:
+    """The common case: an object with a string metric, string labels, an epoch-seconds time
+    no later than ``limit`` and a finite number. Returns False to send it to the checked path."""
+    if type(obj) is not dict:
+        return False
+    metric, labels, t, v = obj.get("metric"), obj.get("labels"), obj.get("time"), obj.get("value")
+    if not (type(metric) is str and metric and type(t) in _NUM and type(v) in _NUM
+            and (labels is None or (type(labels) is dict and "__name__" not in labels))):
+        return False
+    t, v = float(t), float(v)
+    return (_isfinite(v) and -1e11 < t < 1e11 and t <= limit
+            and builder.add_raw(metric, tuple(labels.items()) if labels else (), t, v))
+
+
+def _limit(rules: TimeRules) -> float:
+    return math.inf if rules.now is None else rules.now + rules.max_future
+
+
 def _add_object(obj: object, builder: PointBuilder, rules: TimeRules) -> None:
-    if type(obj) is dict:
-        metric, labels, t, v = obj.get("metric"), obj.get("labels"), obj.get("time"), obj.get("value")
-        if (type(metric) is str and metric and type(t) in _NUM and type(v) in _NUM
-                and (labels is None or (type(labels) is dict and "__name__" not in labels))):
-            t, v = float(t), float(v)
-            if (_isfinite(v) and _isfinite(t) and abs(t) < 1e11
-                    and (rules.now is None or t <= rules.now + rules.max_future)
-                    and builder.add_raw(metric, tuple(labels.items()) if labels else (), t, v)):
-                return
-    _add_object_checked(obj, builder, rules)
+    if not _add_fast(obj, builder, _limit(rules)):
+        _add_object_checked(obj, builder, rules)
 
 
 def _add_object_checked(obj: object, builder: PointBuilder, rules: TimeRules) -> None:
@@ -112,10 +121,10 @@ def decode_json(
                 lines = True
             else:
                 errors.add("record", f"invalid JSON ({exc})", data)
-                return _result(out, own, errors, 1)
+                return finish(out, errors, 1, own=own)
         else:
             records = _add_document(doc, "record", data, out, rules, errors)
-            return _result(out, own, errors, records)
+            return finish(out, errors, records, own=own)
     for lineno, chunk in enumerate(data.splitlines(), start=1):
         if not chunk.strip():
             continue
@@ -126,13 +135,7 @@ def decode_json(
             errors.add(f"line {lineno}", f"invalid JSON ({exc})", chunk)
             continue
         records += _add_document(doc, f"line {lineno}", chunk, out, rules, errors)
-    return _result(out, own, errors, records)
-
-
-def _result(builder: PointBuilder, own: bool, errors: ErrorCollector, records: int) -> Decoded:
-    if own:
-        return finish(builder, errors, records)
-    return Decoded(points=_EMPTY, errors=errors.errors, records=records)
+    return finish(out, errors, records, own=own)
 
 
 def _dumpable(item: object) -> bool:
@@ -149,14 +152,12 @@ def decode_json_messages(values: list[bytes], position: Callable[[int], str], *,
     """Decode many messages into one batch (the daemon's path): ``(batch, bad, records)``.
 
     ``bad`` lists ``(index, Decoded)`` for messages with at least one refused record; their
-    good records are in the batch too. Well-formed single objects of a series seen before
-    are handled inline: parse, four type checks, one cache lookup.
+    good records are in the batch too. Well-formed single objects take the fast path
+    (parse, four type checks, one cache lookup).
     """
     b = PointBuilder(cache)
-    raw_get = b._raw.get
-    keys_append, times_append, values_append = b.keys.append, b.times.append, b.values.append
     loads = orjson.loads
-    limit = math.inf if rules.now is None else rules.now + rules.max_future
+    limit = _limit(rules)
     bad: list[tuple[int, Decoded]] = []
     records = 0
     for i, data in enumerate(values):
@@ -164,23 +165,9 @@ def decode_json_messages(values: list[bytes], position: Callable[[int], str], *,
             doc = loads(data)
         except orjson.JSONDecodeError:
             doc = None
-        if type(doc) is dict:
-            metric, labels, t, v = doc.get("metric"), doc.get("labels"), doc.get("time"), doc.get("value")
-            if (type(metric) is str and metric and type(t) in _NUM and type(v) in _NUM
-                    and (labels is None or (type(labels) is dict and "__name__" not in labels))):
-                t, v = float(t), float(v)
-                if _isfinite(v) and -1e11 < t < 1e11 and t <= limit:
-                    items = tuple(labels.items()) if labels else ()
-                    key = raw_get((metric, items))
-                    if key is not None:
-                        keys_append(key)
-                        times_append(t)
-                        values_append(v)
-                        records += 1
-                        continue
-                    if b.add_raw(metric, items, t, v):
-                        records += 1
-                        continue
+        if _add_fast(doc, b, limit):
+            records += 1
+            continue
         d = decode_json(data, prefix=position(i), rules=rules, builder=b)
         records += d.records
         if d.errors:

@@ -129,7 +129,6 @@ class Engine:
         self.rule_needed = np.array([r.confirm_needed for r in rules], np.int64)
         self.rule_clear = np.array([r.clear_steps for r in rules], np.int64)
         self.rule_direction = np.array([DIRECTION_CODES[r.direction] for r in rules], np.int64)
-        self.rule_width = np.array([r.width for r in rules])
         self.any_auto = any(r.step is None for r in rules)
         self.any_lateness = any(r.lateness > 0 for r in rules)
         self.any_counter = bool(self.rule_counter.any())

@@ -32,7 +32,7 @@ from streamdet.daemon.state_store import Checkpoint, LocalStateStore, StateError
 
 log = logging.getLogger("streamdet.daemon")
 TP = tuple[str, int]
-_COUNTER_METRICS = {"points_accepted": "points_accepted", "points_late": "points_late"}
+_COUNTER_METRICS = ("points_accepted", "points_late")  # engine counter = metric attribute
 _DROP_REASONS = ("points_no_rule", "points_series_limit", "counter_samples_dropped")
 
 
@@ -255,10 +255,10 @@ class Daemon:
 
     def _count(self, part: PartitionState) -> None:
         c = part.engine.counters
-        for name, metric in _COUNTER_METRICS.items():
+        for name in _COUNTER_METRICS:
             delta = c[name] - part.counters[name]
             if delta:
-                getattr(self.metrics, metric).inc(delta)
+                getattr(self.metrics, name).inc(delta)
         for name in _DROP_REASONS:
             delta = c[name] - part.counters[name]
             if delta:
