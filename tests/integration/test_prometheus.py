@@ -10,7 +10,8 @@ import urllib.request
 
 import pytest
 
-from tests.integration.kafka import free_port, unique, wait_port
+from streamdet.local_broker import free_port, wait_port
+from tests.integration.kafka import unique
 from tests.integration.streams import as_messages, waterflow_points
 from tests.integration.test_daemon import Running, make_daemon, wait_for
 

@@ -14,7 +14,8 @@ from collections import Counter
 import pytest
 import yaml
 
-from tests.integration.kafka import Broker, free_port, unique
+from streamdet.local_broker import free_port
+from tests.integration.kafka import Broker, unique
 from tests.integration.streams import DAEMON_RULES, as_messages, waterflow_points
 from tests.integration.test_daemon import replay_events, wait_for
 
