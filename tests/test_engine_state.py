@@ -85,3 +85,15 @@ def test_learning_series_produce_no_events():
     eng = Engine(parse_config({"rules": [{"name": "r", "warmup": "1d"}]}))
     assert eng.ingest(batch("m", t, y)) + eng.finish() == []
     assert eng.stats()["series_learning"] == 1 and eng.is_learning("m")
+
+
+def test_evicting_a_series_with_an_open_breach_closes_it():
+    t = np.arange(200) * 60.0
+    y = np.where(t >= 150 * 60, 50.0, 1.0 + np.sin(t))
+    eng = Engine(parse_config({"rules": [{"name": "r", "warmup": "50 steps", "relearn_after": "1d"}],
+                               "series": {"idle_ttl": "1h"}}))
+    events = eng.ingest(batch("m", t, y))
+    assert [e.type for e in events] == ["streamdet.breach.opened"]
+    later = eng.ingest(batch("other", [t[-1] + 4 * 3600], [1.0]))  # event time moves on; "m" is idle
+    assert [(e.type, e.reason) for e in later] == [("streamdet.breach.closed", "series went quiet")]
+    assert later[0].opened_id == events[0].id and eng.counters["series_evicted"] == 1

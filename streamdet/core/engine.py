@@ -179,9 +179,7 @@ class Engine:
         events = []
         for row in idle.tolist():
             if self.confirm.status[row] != 0:
-                events.append(self._closed_event(row, reason="series went quiet",
-                                                 start=self.confirm.last_out[row], step=None,
-                                                 values=None))
+                events.append(self._closed_event(row, reason="series went quiet", values=None))
             self.pending.pop(row, None)
         self.table.release(idle)
         self.counters["series_evicted"] += idle.shape[0]
@@ -390,9 +388,7 @@ class Engine:
                 else:
                     reason = ("the band re-levelled after a lasting shift"
                               if trans.closed_after_relearn[i] else "back inside the band")
-                    events.append(self._closed_event(int(rows[i]), reason=reason,
-                                                     start=float(start[i]), step=float(step[i]),
-                                                     values=values, i=i))
+                    events.append(self._closed_event(int(rows[i]), reason=reason, values=values, i=i))
             self.counters["events_opened"] += int(trans.opened.sum())
             self.counters["events_closed"] += int(trans.closed.sum())
         # Learn from the step, with the value clipped to the band once the band is trusted.
@@ -437,8 +433,8 @@ class Engine:
         return BreachEvent(type=OPENED, direction="above" if c.status[row] > 0 else "below",
                            started=float(c.since[row]), **self._base(row, i, values))
 
-    def _closed_event(self, row: int, *, reason: str, start: float, step: float | None,
-                      values, i: int = 0) -> BreachEvent:
+    def _closed_event(self, row: int, *, reason: str, values, i: int = 0) -> BreachEvent:
+        """Closed event at wave index ``i``; ``values=None`` for an evicted series (no step)."""
         c = self.confirm
         rule = self.config.rules[int(self.table.rule[row])]
         key = self.table.keys[row]
