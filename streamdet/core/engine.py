@@ -241,8 +241,10 @@ class Engine:
         self.counters["points_accepted"] += rows.shape[0]
         if reorder:
             k = np.floor(t / tab.step[rows]).astype(np.int64)
+        # Dropping late points keeps rows unique; added held or rate points may not.
         closed = self.steps.merge(rows, k, t, v, seq, self._agg_of, tab.step.__getitem__,
-                                  tab.lateness.__getitem__, self.clock)
+                                  tab.lateness.__getitem__, self.clock,
+                                  unique=None if reorder else unique_rows)
         return self._judge_all(closed) + self._evict()
 
     def advance(self, clock: float) -> list[BreachEvent]:

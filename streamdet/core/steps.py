@@ -95,11 +95,16 @@ class Steps(ColumnState):
     # ------------------------------------------------------------ stepping
 
     def merge(self, rows, k, t, v, seq, agg_of_row, step_of_row, lateness_of_row,
-              clock: float) -> ClosedSteps:
-        """Merge accepted points into open steps; return the steps that close at ``clock``."""
+              clock: float, unique: bool | None = None) -> ClosedSteps:
+        """Merge accepted points into open steps; return the steps that close at ``clock``.
+
+        ``unique`` says whether each row appears at most once (None: find out).
+        """
         if rows.shape[0] == 0:
             return ClosedSteps.empty()
-        if np.bincount(rows).max() == 1 and self._merge_single(rows, k, t, v, agg_of_row(rows)):
+        if unique is None:
+            unique = bool(np.bincount(rows).max() == 1)
+        if unique and self._merge_single(rows, k, t, v, agg_of_row(rows)):
             return ClosedSteps.empty()  # closing is left to due(), which sees the same clock
         present = np.unique(rows)
         parts_r, parts_k, parts_acc, parts_cnt, parts_t, parts_seq = [rows], [k], [v], [
