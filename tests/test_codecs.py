@@ -1,13 +1,17 @@
 """Decoders: documented forms, the bad-record rules, and never raising on arbitrary bytes."""
 
+import json
 from datetime import UTC, datetime
 
+import orjson
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from streamdet.codecs import TimeRules, decode_csv, decode_influx, decode_json, format_for_path
-from streamdet.codecs.common import epoch_to_seconds, parse_time
+from streamdet.codecs.common import RecordError, check_series, epoch_to_seconds, parse_time
+from streamdet.codecs.json import decode_json_messages
+from streamdet.core.points import PointBuilder, normalise_labels, series_key
 
 T0 = datetime(2024, 3, 1, 12, 0, tzinfo=UTC).timestamp()
 
@@ -140,3 +144,118 @@ def test_decoders_never_raise_on_arbitrary_bytes(data):
 def test_influx_never_raises_on_line_like_text(text):
     out = decode_influx(text.encode())
     assert all(e.position.startswith("line") for e in out.errors)
+
+
+# ---------------------------------------------------------------- poison records (issue 7, item 1)
+
+@pytest.mark.parametrize("labels,kind", [('{"h": {"x": 1}}', "an object"), ('{"h": [1, 2]}', "a list"),
+                                         ('{"h": null}', "null"), ('{"h": true}', "a boolean")])
+def test_label_values_that_are_not_strings_are_refused_with_a_reason(labels, kind):
+    # Before: an object or list label value raised TypeError (unhashable) in the key cache.
+    record = b'{"metric": "g", "labels": %s, "time": 60, "value": 1}' % labels.encode()
+    for decoded in (decode_json(record, prefix="t/0@5"),
+                    decode_json_messages([record], lambda i: "t/0@5")[1][0][1]):
+        assert len(decoded.points) == 0
+        assert decoded.errors[0].position == "t/0@5 record"
+        assert decoded.errors[0].reason == f"label 'h': value is {kind}; label values must be strings or numbers"
+
+
+def test_numeric_label_values_become_strings_on_both_paths():
+    record = b'{"metric": "g", "labels": {"shard": 7, "w": 0.5}, "time": 60, "value": 1}'
+    batch, bad, _ = decode_json_messages([record], str)
+    assert bad == [] and batch.keys == ['g{shard="7",w="0.5"}']
+    assert decode_json(record).points.keys == ['g{shard="7",w="0.5"}']
+
+
+@pytest.mark.parametrize("record,reason", [
+    ({"metric": "m" * 257}, "too long: metric name of 257 characters (limit 256)"),
+    ({"labels": {"k" * 257: "v"}}, "too long: label name of 257 characters (limit 256)"),
+    ({"labels": {"host": "v" * 1025}}, "too long: label 'host' has a value of 1025 characters (limit 1024)"),
+    ({"labels": {f"l{i}": "v" * 1000 for i in range(5)}}, "too long: series key of 5032 characters (limit 4096)"),
+])
+def test_length_limits_on_names_values_and_keys(record, reason):
+    doc = {"metric": "m", "time": 60, "value": 1, **record}
+    data = orjson.dumps(doc)
+    for decoded in (decode_json(data), decode_json_messages([data], str)[1][0][1]):
+        assert len(decoded.points) == 0 and decoded.errors[0].reason.startswith(reason)
+    at_limit = orjson.dumps({"metric": "m" * 256, "labels": {"k" * 256: "v" * 1024}, "time": 60, "value": 1})
+    assert len(decode_json_messages([at_limit], str)[0]) == 1
+
+
+def test_length_limits_apply_to_line_protocol_and_csv():
+    lp = decode_influx(b"cpu,host=" + b"a" * 2000 + b" v=1 60000000000\ncpu v=2 60000000000")
+    assert lp.errors[0].reason.startswith("too long: label 'host'") and lp.points.value.tolist() == [2.0]
+    csv = decode_csv(b"time,value,host\n60,1," + b"a" * 2000 + b"\n120,2,b\n")
+    assert csv.errors[0].position == "line 2" and csv.points.value.tolist() == [2.0]
+
+
+@pytest.mark.parametrize("line,reason", [
+    (b"m f=" + b"9" * 400 + b"i 60000000000", "integer field value of 400 digits is out of range"),
+    (b"m f=" + b"9" * 5000 + b"u 60000000000", "integer field value of 5000 digits is out of range"),
+    (b"m f=1 " + b"9" * 400, "timestamp of 400 digits is out of range"),
+    (b"m f=1e400 60000000000", "is out of range"),
+    (b"m f=1_000 60000000000", "is not a number"),
+    (b"m f=1 6_000", "is not an integer"),
+    (b"m f=1 -60000000000", "outside 1970-01-01 .. 9999-12-31"),
+])
+def test_line_protocol_numbers_out_of_range_are_refused(line, reason):
+    # Before: a 400-digit integer field or timestamp raised OverflowError out of the decoder.
+    d = decode_influx(line + b"\nm f=2 60000000000")
+    assert reason in d.errors[0].reason and d.points.value.tolist() == [2.0]
+
+
+def test_times_outside_the_calendar_are_refused():
+    for raw in (b'"0001-01-01T00:00:00+14:00"', b"-5", b'"1e300"'):
+        d = decode_json(b'{"metric": "m", "time": %s, "value": 1}' % raw)
+        assert "outside 1970-01-01 .. 9999-12-31" in d.errors[0].reason
+
+
+# ---------------------------------------------------------------- property tests (issue 7, item 2)
+
+_json_scalars = (st.none() | st.booleans() | st.integers() | st.text(max_size=20)
+                 | st.floats(allow_nan=False, allow_infinity=False))
+_json_values = st.recursive(_json_scalars, lambda inner: st.lists(inner, max_size=4)
+                            | st.dictionaries(st.text(max_size=8), inner, max_size=4), max_leaves=12)
+# Objects that look like points, with any JSON value in any field, so the field checks are reached.
+_points = st.fixed_dictionaries({}, optional={
+    "metric": st.text(max_size=300) | _json_values, "labels": st.dictionaries(
+        st.text(max_size=300), st.text(max_size=1100) | _json_values, max_size=5) | _json_values,
+    "time": st.floats(0, 2e9) | st.integers() | _json_values, "value": _json_values,
+    "timestamp": _json_values})
+
+
+def _outcome(decoded):
+    return list(decoded.points.keys), decoded.points.value.tolist(), [e.reason for e in decoded.errors]
+
+
+@settings(max_examples=400, deadline=None)
+@given(st.one_of(_json_values, _points, st.lists(_points, max_size=3)))
+def test_arbitrary_json_never_raises_and_both_paths_agree(doc):
+    data = json.dumps(doc, allow_nan=False).encode()
+    single = decode_json(data)
+    assert len(single.points) + len(single.errors) == single.records  # one point or one reason each
+    batch, bad, records = decode_json_messages([data], lambda i: "")
+    fast = bad[0][1].errors if bad else []
+    assert (batch.keys, batch.value.tolist(), [e.reason for e in fast]) == _outcome(single)
+    assert records == single.records
+    for line in (data, data + b"\n" + data):
+        decode_influx(line)
+        decode_csv(b"time,value,metric\n" + line)
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.text(max_size=40), st.text(max_size=20), st.text(max_size=40), st.text(max_size=40))
+def test_series_key_never_raises_and_label_values_stay_distinct(metric, name, v1, v2):
+    # The OpenMetrics text form escapes \\, " and newline in label values, so different values
+    # give different keys (OpenMetrics 1.0, "Escaping" in the ABNF section).
+    k1, k2 = series_key(metric, ((name, v1),)), series_key(metric, ((name, v2),))
+    assert (k1 == k2) == (v1 == v2)
+    b = PointBuilder()
+    for v in (v1, v2):
+        labels = normalise_labels({name: v})
+        try:
+            check_series(metric, labels)
+        except RecordError:
+            continue
+        b.add(metric, labels, 60.0, 1.0)
+    assert len(b.build()) <= 2

@@ -3,7 +3,9 @@
 Epoch numbers are told apart by magnitude (documented in the README):
 ``|x| < 1e11`` seconds, ``< 1e14`` milliseconds, ``< 1e17`` microseconds,
 otherwise nanoseconds. ISO 8601 strings may use ``T`` or a space; a time without
-an offset is UTC.
+an offset is UTC. Times must fall between 1970 and 9999, and series names and labels
+have length limits (:func:`check_series`), so one hostile record cannot make a series
+key of megabytes or a time no calendar can show.
 """
 
 from __future__ import annotations
@@ -12,7 +14,18 @@ import math
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 
-from streamdet.core.points import DecodeError, PointBatch, PointBuilder, shorten
+from streamdet.core.points import DecodeError, Labels, PointBatch, PointBuilder, series_key, shorten
+
+# Documented in the README's input section; a record over a limit is refused with a reason.
+MAX_METRIC_NAME = 256
+MAX_LABEL_NAME = 256
+MAX_LABEL_VALUE = 1024
+MAX_SERIES_KEY = 4096
+# A message this short cannot hold a label or a key over the limits (a JSON string of n
+# characters takes at least n bytes): the JSON fast path checks only the metric name then.
+SMALL_MESSAGE = MAX_LABEL_NAME
+MIN_TIME = 0.0  # 1970-01-01T00:00:00Z
+MAX_TIME = 253402300799.0  # 9999-12-31T23:59:59Z
 
 
 class RecordError(ValueError):
@@ -33,6 +46,8 @@ class TimeRules:
     def check(self, t: float) -> float:
         if not math.isfinite(t):
             raise RecordError("time is not a finite number")
+        if not MIN_TIME <= t <= MAX_TIME:
+            raise RecordError(f"time {t:.6g} s is outside 1970-01-01 .. 9999-12-31")
         if self.now is not None and t > self.now + self.max_future:
             ahead = t - self.now
             raise RecordError(
@@ -64,6 +79,29 @@ def epoch_to_seconds(x: float) -> float:
     if ax < 1e17:
         return x / 1e6
     return x / 1e9
+
+
+def check_series(metric: str, labels: Labels) -> None:
+    """Refuse names, label values and series keys over the documented limits.
+
+    >>> check_series("cpu", (("host", "a" * 2000),))
+    Traceback (most recent call last):
+    ...
+    streamdet.codecs.common.RecordError: too long: label 'host' has a value of 2000 characters (limit 1024)
+    """
+    if len(metric) > MAX_METRIC_NAME:
+        raise RecordError(f"too long: metric name of {len(metric)} characters (limit {MAX_METRIC_NAME})")
+    size = len(metric) + 2
+    for name, value in labels:
+        if len(name) > MAX_LABEL_NAME:
+            raise RecordError(f"too long: label name of {len(name)} characters (limit {MAX_LABEL_NAME})")
+        if len(value) > MAX_LABEL_VALUE:
+            raise RecordError(f"too long: label {shorten(name, 40)!r} has a value of {len(value)} "
+                              f"characters (limit {MAX_LABEL_VALUE})")
+        size += len(name) + len(value) + 4
+    if size > MAX_SERIES_KEY // 2 and len(series_key(metric, labels)) > MAX_SERIES_KEY:
+        raise RecordError(f"too long: series key of {len(series_key(metric, labels))} characters "
+                          f"(limit {MAX_SERIES_KEY})")
 
 
 def parse_time(raw: object) -> float:

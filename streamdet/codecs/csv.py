@@ -14,6 +14,7 @@ from streamdet.codecs.common import (
     ErrorCollector,
     RecordError,
     TimeRules,
+    check_series,
     finish,
     parse_time,
     parse_value,
@@ -77,6 +78,7 @@ def decode_csv(
             t = rules.check(parse_time(row[i_time]))
             v = parse_value(row[i_value])
             labels = normalise_labels({h: row[i].strip() for i, h in label_cols})
+            check_series(name, labels)
         except RecordError as exc:
             errors.add(where, str(exc), ",".join(row))
             continue

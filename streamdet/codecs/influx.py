@@ -4,18 +4,23 @@ Each numeric field becomes the series ``<measurement>_<field>`` with the tags as
 labels. Escaping follows the published line-protocol reference: in the
 measurement ``\\,`` and ``\\ ``; in tag keys, tag values and field keys also
 ``\\=``; in string field values ``\\"`` and ``\\\\``. Booleans become 1/0; string
-fields are ignored (a line with no numeric field at all is an error).
+fields are ignored (a line with no numeric field at all is an error). Numbers are ASCII
+digits only, and an integer or timestamp too large for a float is refused, not raised.
 """
 
 from __future__ import annotations
 
-from streamdet.codecs.common import Decoded, ErrorCollector, RecordError, TimeRules, finish
-from streamdet.core.points import PointBuilder
+import re
+
+from streamdet.codecs.common import Decoded, ErrorCollector, RecordError, TimeRules, check_series, finish
+from streamdet.core.points import PointBuilder, shorten
 
 _PRECISION = {"s": 1.0, "ms": 1e3, "us": 1e6, "ns": 1e9}
 _TRUE = {"t", "T", "true", "True", "TRUE"}
 _FALSE = {"f", "F", "false", "False", "FALSE"}
 _DEFAULT_RULES = TimeRules()
+_INTEGER = re.compile(r"[+-]?[0-9]+")
+_FLOAT = re.compile(r"[+-]?([0-9]+\.?[0-9]*|\.[0-9]+)([eE][+-]?[0-9]+)?")
 
 
 def _split(text: str, sep: str, *, quotes: bool = False) -> list[str]:
@@ -86,17 +91,21 @@ def _field_value(raw: str) -> float | None:
     if raw in _FALSE:
         return 0.0
     last = raw[-1]
-    try:
-        if last in "iu":
+    if last in "iu":
+        if not _INTEGER.fullmatch(raw, 0, len(raw) - 1):
+            raise RecordError(f"field value {shorten(raw, 40)!r} is not a number, boolean or string")
+        try:
             value = float(int(raw[:-1]))
-            if last == "u" and value < 0:
-                raise RecordError(f"unsigned field value {raw!r} is negative")
-            return value
-        value = float(raw)
-    except ValueError:
-        raise RecordError(f"field value {raw!r} is not a number, boolean or string") from None
-    if value != value or value in (float("inf"), float("-inf")):
-        raise RecordError(f"field value {raw!r} is not finite")
+        except (OverflowError, ValueError):
+            raise RecordError(f"integer field value of {len(raw) - 1} digits is out of range") from None
+        if last == "u" and value < 0:
+            raise RecordError(f"unsigned field value {raw!r} is negative")
+        return value
+    if not _FLOAT.fullmatch(raw):
+        raise RecordError(f"field value {shorten(raw, 40)!r} is not a number, boolean or string")
+    value = float(raw)
+    if value in (float("inf"), float("-inf")):
+        raise RecordError(f"field value {shorten(raw, 40)!r} is out of range")
     return value
 
 
@@ -121,15 +130,19 @@ def parse_line(line: str, precision: float, rules: TimeRules) -> list[tuple[str,
             raise RecordError(f"field {field!r} is not key=value")
         value = _field_value(kv[1])
         if value is not None:
-            out.append((f"{measurement}_{_unescape(kv[0], ',= ')}", value))
+            metric = f"{measurement}_{_unescape(kv[0], ',= ')}"
+            check_series(metric, labels)
+            out.append((metric, value))
     if not out:
         raise RecordError("no numeric field")
     if len(sections) == 3:
+        if not _INTEGER.fullmatch(sections[2]):
+            raise RecordError(f"timestamp {shorten(sections[2], 40)!r} is not an integer")
         try:
-            stamp = int(sections[2])
-        except ValueError:
-            raise RecordError(f"timestamp {sections[2]!r} is not an integer") from None
-        t = rules.check(stamp / precision)
+            t = int(sections[2]) / precision
+        except (OverflowError, ValueError):
+            raise RecordError(f"timestamp of {len(sections[2])} digits is out of range") from None
+        t = rules.check(t)
     elif rules.now is not None:
         t = rules.now
     else:

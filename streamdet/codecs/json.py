@@ -2,8 +2,10 @@
 
 Object form: ``{"metric": "cpu", "labels": {"host": "a"}, "time": ..., "value": ...}``.
 The Prometheus data-model form is accepted too: the metric name as the
-``__name__`` label and no ``metric`` field. Well-formed objects with numeric epoch-second
-times and values take a fast path; everything else goes through the validating one.
+``__name__`` label and no ``metric`` field. Label values are strings (numbers are turned
+into strings; anything else refuses the record). Well-formed objects with numeric epoch-second
+times and values take a fast path; everything else goes through the validating one, which
+gives the reason.
 """
 
 from __future__ import annotations
@@ -14,41 +16,66 @@ from collections.abc import Callable
 import orjson
 
 from streamdet.codecs.common import (
+    MAX_LABEL_NAME,
+    MAX_LABEL_VALUE,
+    MAX_METRIC_NAME,
+    MAX_SERIES_KEY,
+    SMALL_MESSAGE,
     Decoded,
     ErrorCollector,
     RecordError,
     TimeRules,
+    check_series,
     finish,
     parse_time,
     parse_value,
 )
-from streamdet.core.points import KeyCache, PointBatch, PointBuilder, normalise_labels
+from streamdet.core.points import KeyCache, PointBatch, PointBuilder, normalise_labels, shorten
 
 _DEFAULT_RULES = TimeRules()
 _NUM = (int, float)
 _isfinite = math.isfinite
 
 
-def _add_fast(obj: object, builder: PointBuilder, limit: float) -> bool:
+def _add_fast(obj: object, builder: PointBuilder, limit: float, size: int) -> bool:
     """The common case: an object with a string metric, string labels, an epoch-seconds time
-    no later than ``limit`` and a finite number. Returns False to send it to the checked path."""
+    no later than ``limit`` and a finite number, all within the length limits. Returns False to
+    send it to the checked path (which gives the reason). ``size`` is the message's length in
+    bytes: a short message cannot hold a label over the limits, so only long ones are scanned."""
     if type(obj) is not dict:
         return False
     metric, labels, t, v = obj.get("metric"), obj.get("labels"), obj.get("time"), obj.get("value")
     if not (type(metric) is str and metric and type(t) in _NUM and type(v) in _NUM
-            and (labels is None or (type(labels) is dict and "__name__" not in labels))):
+            and (labels is None or (type(labels) is dict and "__name__" not in labels))
+            and len(metric) <= MAX_METRIC_NAME):
+        return False
+    if size > SMALL_MESSAGE and labels and not _labels_fit(metric, labels):
         return False
     t, v = float(t), float(v)
-    return (_isfinite(v) and -1e11 < t < 1e11 and t <= limit
-            and builder.add_raw(metric, tuple(labels.items()) if labels else (), t, v))
+    if not (_isfinite(v) and 0.0 <= t < 1e11 and t <= limit):
+        return False
+    try:
+        return builder.add_raw(metric, tuple(labels.items()) if labels else (), t, v)
+    except TypeError:  # an unhashable label value (object or list): the checked path says so
+        return False
+
+
+def _labels_fit(metric: str, labels: dict) -> bool:
+    """Plainly within the limits; False sends borderline keys to the exact check."""
+    size = len(metric) + 2
+    for k, v in labels.items():
+        if type(v) is not str or len(v) > MAX_LABEL_VALUE or len(k) > MAX_LABEL_NAME:
+            return False
+        size += len(k) + len(v) + 4
+    return size <= MAX_SERIES_KEY // 2
 
 
 def _limit(rules: TimeRules) -> float:
     return math.inf if rules.now is None else rules.now + rules.max_future
 
 
-def _add_object(obj: object, builder: PointBuilder, rules: TimeRules) -> None:
-    if not _add_fast(obj, builder, _limit(rules)):
+def _add_object(obj: object, builder: PointBuilder, rules: TimeRules, size: int) -> None:
+    if not _add_fast(obj, builder, _limit(rules), size):
         _add_object_checked(obj, builder, rules)
 
 
@@ -69,14 +96,24 @@ def _add_object_checked(obj: object, builder: PointBuilder, rules: TimeRules) ->
         raise RecordError("'metric' must be a non-empty string")
     for k, v in labels.items():
         if not isinstance(v, str | int | float) or isinstance(v, bool):
-            raise RecordError(f"label {k!r} must be a string or number")
+            raise RecordError(f"label {shorten(k, 40)!r}: value is {_kind(v)}; label values must be "
+                              "strings or numbers")
     if "time" not in obj and "timestamp" not in obj:
         raise RecordError("missing field 'time'")
     t = rules.check(parse_time(obj.get("time", obj.get("timestamp"))))
     if "value" not in obj:
         raise RecordError("missing field 'value'")
     v = parse_value(obj["value"])
-    builder.add(metric, normalise_labels(labels), t, v)
+    normal = normalise_labels(labels)
+    check_series(metric, normal)
+    builder.add(metric, normal, t, v)
+
+
+_KINDS = {dict: "an object", list: "a list", bool: "a boolean", type(None): "null"}
+
+
+def _kind(value: object) -> str:
+    return _KINDS.get(type(value), type(value).__name__)
 
 
 def _add_document(doc: object, where: str, chunk: bytes, builder: PointBuilder, rules: TimeRules,
@@ -84,7 +121,7 @@ def _add_document(doc: object, where: str, chunk: bytes, builder: PointBuilder, 
     items = doc if type(doc) is list else (doc,)
     for i, item in enumerate(items, start=1):
         try:
-            _add_object(item, builder, rules)
+            _add_object(item, builder, rules, len(chunk))
         except RecordError as exc:
             item_where = f"{where} item {i}" if type(doc) is list else where
             errors.add(item_where, str(exc), orjson.dumps(item) if _dumpable(item) else chunk)
@@ -165,7 +202,7 @@ def decode_json_messages(values: list[bytes], position: Callable[[int], str], *,
             doc = loads(data)
         except orjson.JSONDecodeError:
             doc = None
-        if _add_fast(doc, b, limit):
+        if _add_fast(doc, b, limit, len(data)):
             records += 1
             continue
         d = decode_json(data, prefix=position(i), rules=rules, builder=b)

@@ -7,6 +7,7 @@ label values: labels are bounded (reason codes, event types, topic/partition).
 
 from __future__ import annotations
 
+import re
 import threading
 from socketserver import ThreadingMixIn
 from wsgiref.simple_server import WSGIRequestHandler, WSGIServer, make_server
@@ -16,9 +17,23 @@ from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, make
 NS = "streamdet"
 
 
+_QUOTED = re.compile(r"'[^']*'|\"[^\"]*\"")
+REASON_CODES = ("too_long", "bad_label", "decoder_error", "future_time", "invalid_json",
+                "missing_field", "not_utf8", "bad_time", "bad_value", "malformed")
+
+
 def reason_code(reason: str) -> str:
-    """A bounded label value for a decode error reason."""
-    r = reason.lower()
+    """A bounded label value for a decode error reason (one of :data:`REASON_CODES`).
+
+    Quoted text is the sender's, so it is ignored: a label named 'future' stays a label problem.
+    """
+    r = _QUOTED.sub("", reason.lower())
+    if r.startswith("too long"):
+        return "too_long"
+    if r.startswith("label "):
+        return "bad_label"
+    if r.startswith("internal error"):
+        return "decoder_error"
     for needle, code in (("future", "future_time"), ("invalid json", "invalid_json"),
                          ("missing", "missing_field"), ("utf-8", "not_utf8"), ("time", "bad_time"),
                          ("nan", "bad_value"), ("infinite", "bad_value"), ("numeric", "bad_value"),
