@@ -1,8 +1,9 @@
-"""Command line: ``streamdet run``, ``replay``, ``check`` and ``demo``."""
+"""Command line: ``streamdet run``, ``replay``, ``evaluate``, ``check`` and ``demo``."""
 
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 import time
 from collections.abc import Sequence
@@ -58,6 +59,62 @@ def cmd_replay(args: argparse.Namespace) -> int:
     return 0
 
 
+def cmd_evaluate(args: argparse.Namespace) -> int:
+    import orjson
+
+    from streamdet.config import parse_duration
+    from streamdet.evaluate import (
+        LabelsError,
+        SweepError,
+        evaluate,
+        json_document,
+        load_labels,
+        read_config_raw,
+        report,
+        warn,
+    )
+
+    try:
+        raw = read_config_raw(args.config)
+    except ConfigError as exc:
+        print(str(exc), file=sys.stderr)
+        return 2
+    try:
+        slack = parse_duration(args.slack)
+        if slack < 0:
+            raise ValueError(f"must be >= 0, got {args.slack!r}")
+    except ValueError as exc:
+        print(f"streamdet evaluate: --slack: {exc}", file=sys.stderr)
+        return 2
+    if args.jobs is not None and args.jobs < 1:
+        print(f"streamdet evaluate: --jobs: must be >= 1, got {args.jobs}", file=sys.stderr)
+        return 2
+    if args.target_false_per_day is not None and not args.target_false_per_day >= 0:
+        print("streamdet evaluate: --target-false-per-day: must be a number >= 0", file=sys.stderr)
+        return 2
+    try:
+        labels = load_labels(args.labels)
+        ev = evaluate(args.inputs, raw, labels, slack=slack, sweep=args.sweep or (),
+                      jobs=args.jobs or (os.cpu_count() or 1), fmt=args.format, now=time.time())
+    except (LabelsError, SweepError) as exc:
+        print(f"streamdet evaluate: {exc}", file=sys.stderr)
+        return 2
+    except (OSError, ValueError) as exc:
+        print(f"streamdet evaluate: {exc}", file=sys.stderr)
+        return 2
+    if ev.unmatched_labels:
+        warn(f"{args.labels}: {len(ev.unmatched_labels)} name(s) match no series or input file: "
+             + ", ".join(ev.unmatched_labels))
+    if ev.errors:
+        warn(f"{len(ev.errors)} bad record(s) skipped; first: {ev.errors[0]}")
+    text, chosen = report(ev, target=args.target_false_per_day)
+    print(text)
+    if args.json:
+        with open(args.json, "wb") as fh:
+            fh.write(orjson.dumps(json_document(ev, chosen), option=orjson.OPT_INDENT_2))
+    return 0
+
+
 def _partition(text: str) -> tuple[str, int]:
     topic, sep, part = text.rpartition(":")
     if not sep or not topic or not part.isdigit():
@@ -108,6 +165,21 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--produce-only", action="store_true", help="only produce the scenario's points")
     d.set_defaults(func=lambda a: __import__("streamdet.demo", fromlist=["run_demo"]).run_demo(
         a.out, a.bootstrap_servers, a.produce_only))
+    v = sub.add_parser("evaluate", help="score breaches against labelled incident windows; sweep settings")
+    v.add_argument("inputs", nargs="+", help="CSV, JSON lines (.jsonl) or line-protocol (.lp) files")
+    v.add_argument("--labels", "-l", required=True,
+                   help='JSON {"series key or file name": [[start, end], ...]}')
+    v.add_argument("--config", "-c", required=True, help="YAML config")
+    v.add_argument("--slack", default="15m", help="an opening this long before a window counts (15m)")
+    v.add_argument("--json", metavar="OUT", help="write the figures as JSON here")
+    v.add_argument("--sweep", nargs="+", action="extend", metavar="KEY=V1,V2",
+                   help="rule settings to try in every combination, e.g. width=2,3 confirm.steps=3,5")
+    v.add_argument("--target-false-per-day", type=float, metavar="X",
+                   help="pick the combination with most detections at or under X false per series-day")
+    v.add_argument("--jobs", "-j", type=int, help="worker processes (default: CPU count)")
+    v.add_argument("--format", choices=("csv", "json", "influx"),
+                   help="input format (default: from each file's extension)")
+    v.set_defaults(func=cmd_evaluate)
     c = sub.add_parser("check", help="validate a config file (exit code 2 on errors)")
     c.add_argument("config")
     c.set_defaults(func=cmd_check)
