@@ -71,6 +71,12 @@ def main() -> None:
     print(score_table([*rows, ("overall", overall)]))
     generated = total(s for name, s in rows if name not in ("nile", "waterflow"))
     print(score_table([("generated only", generated)]).splitlines()[1])
+    if ev.errors:
+        per_file: dict[str, list[str]] = {}
+        for e in ev.errors:
+            per_file.setdefault(Path(e.position.split(" line ")[0]).name, []).append(e.reason)
+        print("bad records skipped: " + "; ".join(
+            f"{name}: {len(reasons)} (first: {reasons[0]})" for name, reasons in sorted(per_file.items())))
     if ev.unmatched_labels:
         print(f"labels matching nothing: {', '.join(ev.unmatched_labels)}")
     if args.json:
