@@ -138,17 +138,18 @@ class Rule:
     timezone: str = "UTC"  # IANA name; hour-of-day and hour-of-week buckets follow local time
     direction: str = "both"
     confirm_steps: int = 5
-    confirm_fraction: float = 0.6
     clear_steps: int = 3
+    rearm: Span = field(default_factory=lambda: Span(seconds=3600.0))
     relearn_after: Span = field(default_factory=lambda: Span(seconds=7200.0))
     warmup: Span = field(default_factory=lambda: Span(seconds=86400.0))
     forecasters: ForecasterParams = field(default_factory=ForecasterParams)
     blend: BlendParams = field(default_factory=BlendParams)
 
     @property
-    def confirm_needed(self) -> int:
-        """Outside steps needed in the confirm window to open a breach."""
-        return max(1, math.ceil(self.confirm_fraction * self.confirm_steps - 1e-9))
+    def open_rarity(self) -> float:
+        """Combined p-value of the evidence window that opens a breach, over all watched sides:
+        as rare as two independent steps outside the band, ``(2 Q(width))**2``."""
+        return (math.erfc(self.width / math.sqrt(2.0))) ** 2
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -399,10 +400,13 @@ def _parse_rule(s: _Section, index: int) -> Rule:
         s.bad("lateness", f"must be shorter than the step ({step:g} s), got {lateness:g} s")
     confirm = s.section("confirm")
     confirm_steps = confirm.number("steps", d.confirm_steps, lo=1, hi=32, integer=True)
-    confirm_fraction = _unit_interval(confirm, "fraction", d.confirm_fraction)
+    if confirm.get("fraction", None) is not None:
+        confirm.bad("fraction", "no longer used: breaches open on the combined evidence of the last "
+                    "confirm.steps steps (see the README, 'Evidence'); remove the key")
     confirm.done()
     clear = s.section("clear")
     clear_steps = clear.number("steps", d.clear_steps, lo=1, hi=10_000, integer=True)
+    rearm = clear.span("rearm", d.rearm)
     clear.done()
     blend_sec = s.section("blend")
     blend = BlendParams(
@@ -423,8 +427,8 @@ def _parse_rule(s: _Section, index: int) -> Rule:
         timezone=_timezone(s),
         direction=s.choice("direction", d.direction, DIRECTIONS),
         confirm_steps=confirm_steps,
-        confirm_fraction=confirm_fraction,
         clear_steps=clear_steps,
+        rearm=rearm,
         relearn_after=s.span("relearn_after", d.relearn_after),
         warmup=s.span("warmup", d.warmup),
         forecasters=_parse_forecasters(s.section("forecasters")),
@@ -481,14 +485,64 @@ def parse_config(raw: object) -> Config:
                   lag_resolution=lag_resolution, extra=extra)
 
 
-def load_config(path: str | Path) -> Config:
-    """Read and validate a YAML file; file and YAML errors become ConfigError too."""
+class _UniqueKeyLoader(yaml.SafeLoader):
+    """YAML's safe loader, except that a key given twice in one mapping is an error (plain
+    YAML keeps the last value without a word, which hides a typo'd override)."""
+
+    def construct_mapping(self, node: yaml.MappingNode, deep: bool = False) -> dict:
+        seen: dict[object, int] = {}
+        for key_node, _value in node.value:
+            key = self.construct_object(key_node, deep=deep)
+            try:
+                if key in seen:
+                    raise yaml.constructor.ConstructorError(
+                        None, None, f"duplicate key {shorten_key(key)!r} (first on line {seen[key]})",
+                        key_node.start_mark)
+                seen[key] = key_node.start_mark.line + 1
+            except TypeError:  # an unhashable key: the base class gives the error
+                continue
+        return super().construct_mapping(node, deep=deep)
+
+
+def shorten_key(key: object, limit: int = 60) -> str:
+    text = str(key)
+    return text if len(text) <= limit else text[: limit - 3] + "..."
+
+
+def _yaml_problem(path: str | Path, exc: yaml.YAMLError) -> str:
+    """The parser's reason and position, never the text of the line: it may hold a secret."""
+    if isinstance(exc, yaml.MarkedYAMLError):
+        parts = []
+        for text, mark in ((exc.context, exc.context_mark), (exc.problem, exc.problem_mark)):
+            if text:
+                where = f"line {mark.line + 1}, column {mark.column + 1}: " if mark is not None else ""
+                parts.append(where + text)
+        return f"{path}: not valid YAML ({'; '.join(parts)})"
+    return f"{path}: not valid YAML ({type(exc).__name__})"
+
+
+def read_config_file(path: str | Path) -> object:
+    """The YAML document of a config file ({} when empty); every way it can be unreadable (missing,
+    not UTF-8, not YAML, a key given twice) is a ConfigError naming the file and the position."""
     try:
-        text = Path(path).read_text(encoding="utf-8")
+        data = Path(path).read_bytes()
     except OSError as exc:
         raise ConfigError([f"{path}: cannot read ({exc.strerror})"]) from None
     try:
-        raw = yaml.safe_load(text)
+        text = data.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        line = data.count(b"\n", 0, exc.start) + 1
+        raise ConfigError([f"{path}: not UTF-8 (byte {exc.start} on line {line}: {exc.reason}); "
+                           "save the file as UTF-8"]) from None
+    try:
+        raw = yaml.load(text, Loader=_UniqueKeyLoader)  # a SafeLoader subclass
     except yaml.YAMLError as exc:
-        raise ConfigError([f"{path}: not valid YAML ({exc})"]) from None
-    return parse_config(raw if raw is not None else {})
+        raise ConfigError([_yaml_problem(path, exc)]) from None
+    except RecursionError:
+        raise ConfigError([f"{path}: not valid YAML (nested too deeply)"]) from None
+    return raw if raw is not None else {}
+
+
+def load_config(path: str | Path) -> Config:
+    """Read and validate a YAML file; file and YAML errors become ConfigError too."""
+    return parse_config(read_config_file(path))

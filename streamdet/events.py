@@ -59,7 +59,10 @@ class BreachEvent:
     direction: str  # side of the band the breach is on: "above" or "below"
     width: float
     weights: Mapping[str, float]
-    started: float  # start of the first outside step of the breach
+    started: float  # start of the first unusual step of the breach
+    p_value: float = math.nan  # combined tail probability of the evidence (opened: at opening;
+    # closed: the breach's strongest), Bonferroni-adjusted when the rule watches both sides
+    surprise: float = math.nan  # -log10(p_value)
     duration: float | None = None  # closed only: started .. end of the last outside step
     worst_score: float | None = None  # closed only
     opened_id: str | None = None  # closed only: id of the matching opened event
@@ -100,6 +103,8 @@ class BreachEvent:
             "width": self.width,
             "weights": {k: round(v, 4) for k, v in self.weights.items()},
             "started": rfc3339(self.started),
+            "p_value": _p(self.p_value),
+            "surprise": _num(round(self.surprise, 3) if math.isfinite(self.surprise) else self.surprise),
         }
         if self.type == CLOSED:
             d["duration_seconds"] = self.duration
@@ -129,9 +134,14 @@ class BreachEvent:
         if self.type == OPENED:
             return (f"{when} OPEN   {self.series} {self.direction} observed={self.observed:.4g} "
                     f"expected={self.expected:.4g} band=[{self.lower:.4g}, {self.upper:.4g}] "
-                    f"score={self.score:+.1f}")
+                    f"score={self.score:+.1f} p={self.p_value:.2g}")
         return (f"{when} CLOSED {self.series} after {self.duration or 0:.0f}s "
                 f"worst={self.worst_score or 0:+.1f} ({self.reason})")
+
+
+def _p(x: float) -> float | None:
+    """A probability with four significant digits (they can be as small as 1e-300)."""
+    return float(f"{x:.4g}") if math.isfinite(x) else None
 
 
 def _num(x: float | None) -> float | None:

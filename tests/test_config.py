@@ -13,19 +13,20 @@ ROOT = Path(__file__).resolve().parents[1]
 def test_defaults():
     cfg = parse_config({})
     (rule,) = cfg.rules
-    assert (rule.step, rule.width, rule.confirm_steps, rule.confirm_fraction, rule.clear_steps) == (
-        60.0, 3.0, 5, 0.6, 3)
+    assert (rule.step, rule.width, rule.confirm_steps, rule.clear_steps) == (60.0, 3.0, 5, 3)
     assert rule.relearn_after.seconds == 7200 and rule.direction == "both"
-    assert rule.confirm_needed == 3
+    assert rule.rearm.seconds == 3600
+    # handbook fact: P(|Z| > 3) = 0.0027 for a standard normal; the open rarity is its square
+    assert abs(rule.open_rarity - 0.0026998**2) < 1e-9
 
 
 def test_errors_name_key_paths_and_all_problems():
     with pytest.raises(ConfigError) as exc:
-        parse_config({"rules": [{"name": "a", "width": -1, "confirm": {"fraction": 2}, "step": "1x"},
+        parse_config({"rules": [{"name": "a", "width": -1, "confirm": {"fraction": 0.6}, "step": "1x"},
                                 {"name": "a", "aggregation": "median"}], "sereis": {}})
     text = "\n".join(exc.value.problems)
     assert "rules[0].width: must be > 0" in text
-    assert "rules[0].confirm.fraction: must be <= 1" in text
+    assert "rules[0].confirm.fraction: no longer used" in text
     assert "rules[0].step: expected a duration" in text
     assert "rules[1].aggregation: expected one of mean, sum, min, max, last, count" in text
     assert "rule name 'a' is used more than once" in text

@@ -69,7 +69,7 @@ def test_gaussian_noise_outside_fraction_matches_normal_tail():
     t = np.repeat(np.arange(n_steps) * 60.0 + 1.7e9, n_series)
     keys = [f"g{i}" for i in range(n_series)] * n_steps
     y = rng.standard_normal(n_steps * n_series)
-    cfg = {"rules": [{"name": "g", "confirm": {"steps": 1, "fraction": 1}, "clear": {"steps": 1}}]}
+    cfg = {"rules": [{"name": "g", "confirm": {"steps": 1}, "clear": {"steps": 1}}]}
     eng, _ = run(cfg, keys, t, y, chunk=200_000)
     cols = eng.log.columns()
     keep = cols["judged"].astype(bool) & (cols["start"] >= 1.7e9 + 7 * 86400)

@@ -28,23 +28,18 @@ from datetime import datetime
 import numpy as np
 
 from streamdet.config import Config, Rule
-from streamdet.core import framing
-from streamdet.core.band import Band
-from streamdet.core.blend import Blend
+from streamdet.core import breach_events, framing
 from streamdet.core.columns import ColumnState
-from streamdet.core.confirm import Confirm
-from streamdet.core.forecast import (
-    DampedHolt,
-    HoltWinters,
-    SeasonalNaive,
-    StepContext,
-    StreamingMedian,
-)
+from streamdet.core.confirm import BreachState
+from streamdet.core.evidence import EvidenceWindow, critical_statistic
+from streamdet.core.forecast import StepContext
 from streamdet.core.forecast.base import as_index
+from streamdet.core.judge import TemporalJudge
 from streamdet.core.points import PointBatch
+from streamdet.core.relevel import RunTracker
 from streamdet.core.series import SeriesTable
 from streamdet.core.steps import AGGREGATION_CODES, ClosedSteps, Steps, running_clock
-from streamdet.events import CLOSED, OPENED, BreachEvent, event_id
+from streamdet.events import BreachEvent
 
 SNAPSHOT_MAGIC = b"SDETSNAP"
 SNAPSHOT_VERSION = 1
@@ -52,7 +47,6 @@ AUTO_STEP_POINTS = 6
 NICE_STEPS = (1, 2, 5, 10, 15, 20, 30, 60, 120, 300, 600, 900, 1200, 1800, 3600, 7200, 10800,
               21600, 43200, 86400, 604800)
 DIRECTION_CODES = {"both": 0, "above": 1, "below": 2}
-SHAPE_CLIP = 5.0  # seasonal profiles learn from values clipped at this many band half-widths
 
 
 def infer_step(times: list[float]) -> float | None:
@@ -82,7 +76,7 @@ class StepLog:
         self.parts.append(tuple(c.copy() for c in cols))
 
     def columns(self) -> dict[str, np.ndarray]:
-        names = ("row", "start", "observed", "expected", "lower", "upper", "judged")
+        names = ("row", "start", "observed", "expected", "lower", "upper", "judged", "p")
         if not self.parts:
             return {n: np.empty(0) for n in names}
         return {n: np.concatenate([p[i] for p in self.parts]) for i, n in enumerate(names)}
@@ -94,41 +88,33 @@ class Engine:
     def __init__(self, config: Config, *, record_steps: bool = False) -> None:
         self.config = config
         rules = config.rules
-        f = [r.forecasters for r in rules]
         self.table = SeriesTable(config)
         cap = self.table.capacity
         self.steps = Steps(cap)
-        self.forecasters = [
-            DampedHolt(cap, alpha=[x.holt.alpha for x in f], beta=[x.holt.beta for x in f],
-                       phi=[x.holt.phi for x in f]),
-            HoltWinters(cap, alpha=[x.seasonal.alpha for x in f],
-                        beta=[x.seasonal.beta for x in f], phi=[x.seasonal.phi for x in f],
-                        memory_weeks=[x.seasonal.memory_weeks for x in f]),
-            SeasonalNaive(cap, resolution=config.lag_resolution),
-            StreamingMedian(cap, rate=[x.quantile.rate for x in f]),
-        ]
-        self.members = tuple(m for fc in self.forecasters for m in fc.members)
-        enabled = {"holt": [True] * len(rules),
-                   "seasonal": [x.seasonal.enabled for x in f],
-                   "lag_day": [x.lags.enabled for x in f],
-                   "lag_week": [x.lags.enabled for x in f],
-                   "median": [x.quantile.enabled for x in f]}
-        self.member_enabled = np.array([enabled[m] for m in self.members], dtype=bool)
-        self.blend = Blend(cap, members=self.members,
-                           learning_rate=[r.blend.learning_rate for r in rules],
-                           share=[r.blend.share for r in rules])
-        self.band = Band(cap, width=[r.width for r in rules], min_width=[r.min_width for r in rules],
-                         scale_floor=[r.scale_floor for r in rules],
-                         memory_weeks=[x.seasonal.memory_weeks for x in f])
-        self.confirm = Confirm(cap)
-        self.parts: list[ColumnState] = [self.table, self.steps, *self.forecasters, self.blend,
-                                         self.band, self.confirm]
+        self.judge = TemporalJudge(config, cap)
+        self.members = self.judge.members
+        self.evidence = EvidenceWindow(cap)
+        self.breaches = BreachState(cap)
+        self.runs = RunTracker(cap)
+        self.parts: list[ColumnState] = [self.table, self.steps, *self.judge.parts, self.evidence,
+                                         self.breaches, self.runs]
         self.rule_agg = np.array([AGGREGATION_CODES[r.aggregation] for r in rules], np.int64)
         self.rule_counter = np.array([r.kind == "counter" for r in rules], dtype=bool)
         self.rule_window = np.array([r.confirm_steps for r in rules], np.int64)
-        self.rule_needed = np.array([r.confirm_needed for r in rules], np.int64)
         self.rule_clear = np.array([r.clear_steps for r in rules], np.int64)
         self.rule_direction = np.array([DIRECTION_CODES[r.direction] for r in rules], np.int64)
+        # Fisher's statistic that opens a breach, per rule and side (inf: side not watched);
+        # the open rarity is split evenly over the watched sides (Bonferroni).
+        self.rule_sides = np.array([2 if r.direction == "both" else 1 for r in rules], np.int64)
+        self.rule_crit = np.array([[critical_statistic(r.open_rarity / s, r.confirm_steps)
+                                    if r.direction in (d, "both") else np.inf
+                                    for d in ("above", "below")]
+                                   for r, s in zip(rules, self.rule_sides.tolist(), strict=True)])
+        # A step is ordinary (it counts towards clearing) when its tail probability on the
+        # breach's side is above that of a band one standard deviation narrower.
+        from scipy.stats import norm
+
+        self.rule_unusual = np.array([norm.sf(max(r.width - 1.0, 0.5)) for r in rules])
         self.any_auto = any(r.step is None for r in rules)
         self.any_lateness = any(r.lateness > 0 for r in rules)
         self.any_counter = bool(self.rule_counter.any())
@@ -139,6 +125,7 @@ class Engine:
         self.pending: dict[int, list[tuple[float, float]]] = {}
         self.next_eviction = -math.inf
         self.log = StepLog() if record_steps else None
+        self.announce = breach_events.Announcer(self)
 
     # ------------------------------------------------------------ series lifecycle
 
@@ -165,6 +152,7 @@ class Engine:
         t.warmup[rows] = rule.warmup.in_steps(step, minimum=20 if rule.warmup.steps is None else 1)
         # A re-level must leave room for a breach to open and close first.
         t.relearn[rows] = rule.relearn_after.in_steps(step, minimum=rule.confirm_steps + rule.clear_steps)
+        t.rearm[rows] = rule.rearm.in_steps(step, minimum=1) * step
 
     def _evict(self) -> list[BreachEvent]:
         ttl = self.config.series.idle_ttl
@@ -178,8 +166,8 @@ class Engine:
             return []
         events = []
         for row in idle.tolist():
-            if self.confirm.status[row] != 0:
-                events.append(self._closed_event(row, reason="series went quiet", values=None))
+            if self.breaches.status[row] != 0:
+                events.append(self.announce.closed_idle(row))
             self.pending.pop(row, None)
         self.table.release(idle)
         self.counters["series_evicted"] += idle.shape[0]
@@ -350,7 +338,11 @@ class Engine:
         return events
 
     def _judge(self, rows: np.ndarray, k: np.ndarray, y: np.ndarray) -> list[BreachEvent]:
-        """One wave: at most one closed step per row, all judged together."""
+        """One wave: at most one closed step per row, all judged together.
+
+        points -> closed steps -> temporal judge (band, tail probabilities) -> evidence window
+        -> shared open/clear/re-arm state -> events; then every part learns from the step.
+        """
         tab = self.table
         sel = as_index(rows)
         rule = tab.rule[sel]
@@ -361,101 +353,75 @@ class Engine:
         tab.first[sel] = first
         local = self._local_time(rule, start) if self.zones else None
         ctx = StepContext.build(rows, rule, start, step, start - first, local)
-        outs = [fc.predict(ctx) for fc in self.forecasters]
-        preds = np.concatenate([o[0] for o in outs])
-        ready = np.concatenate([o[1] for o in outs]) & self.member_enabled[:, rule]
-        centre, weights, any_ready = self.blend.combine(sel, preds, ready)
-        half, scale = self.band.half_width(ctx, centre)
-        learning = (self.band.n[sel] < tab.warmup[sel]) | ~any_ready
-        judged = ~learning
-        resid = y - centre
-        side = np.where(resid > half, 1, np.where(resid < -half, -1, 0)) * judged
-        direction = self.rule_direction[rule]
-        counted = ((side == 1) & (direction != 2)) | ((side == -1) & (direction != 1))
-        with np.errstate(invalid="ignore", divide="ignore"):
-            score = np.where(scale > 0, resid / scale, np.sign(resid) * np.inf)
-        lower, upper = centre - half, centre + half
-        trans = self.confirm.step(rows, sel, judged, side, counted, score, resid, start, step,
-                                  self.rule_window[rule], self.rule_needed[rule],
-                                  self.rule_clear[rule], tab.relearn[sel])
+        a = self.judge.assess(ctx, y)
+        judged = (self.judge.band.n[sel] >= tab.warmup[sel]) & a.any_ready
+        back = self.runs.returning(sel, start, y - a.centre, a.centre - a.lower, a.upper - a.centre)
+        back &= judged & (self.breaches.status[sel] == 0)
+        if back.any():  # back at the level before a re-level: no evidence, move back below
+            a.p_up = np.where(back, 1.0, a.p_up)
+            a.p_lo = np.where(back, 1.0, a.p_lo)
+        window = self.rule_window[rule]
+        stat = self.evidence.add(sel, rows, judged, a.p_up, a.p_lo, window)
+        threshold = self.rule_unusual[rule]
+        unusual = np.stack([a.p_up < threshold, a.p_lo < threshold], axis=1)
+        trans = self.breaches.step(sel, judged, stat, self.rule_crit[rule], unusual, a.score, start,
+                                   step, self.rule_clear[rule], tab.rearm[sel])
+        side = np.where(y > a.upper, 1, np.where(y < a.lower, -1, 0)) * judged
+        side = np.where(back, 0, side)
+        in_run = self.runs.run[sel] != 0
+        rl = self.runs.step(sel, judged, side, y - a.centre, a.scale, tab.relearn[sel], start, step)
         if self.log is not None:
-            self.log.add(rows, start, y, np.where(any_ready, centre, np.nan),
-                         np.where(judged, lower, np.nan), np.where(judged, upper, np.nan), judged)
+            p_two = np.minimum(1.0, 2.0 * np.minimum(a.p_up, a.p_lo))
+            self.log.add(rows, start, y, np.where(a.any_ready, a.centre, np.nan),
+                         np.where(judged, a.lower, np.nan), np.where(judged, a.upper, np.nan), judged,
+                         np.where(judged, p_two, np.nan))
         events: list[BreachEvent] = []
-        if trans.opened.any() or trans.closed.any():
-            values = (start, step, y, centre, lower, upper, score, weights)
-            for i in np.flatnonzero(trans.opened | trans.closed).tolist():
+        changed = trans.opened | trans.closed
+        if changed.any():
+            wave = breach_events.Wave(rows, start, step, y, a, stat, window)
+            for i in np.flatnonzero(changed).tolist():
+                row = int(rows[i])
                 if trans.opened[i]:
-                    events.append(self._opened_event(int(rows[i]), i, values))
+                    self._set_since(row, i, wave, float(threshold[i]))
+                    events.append(self.announce.opened(row, i, wave))
                 else:
                     reason = ("the band re-levelled after a lasting shift"
                               if trans.closed_after_relearn[i] else "back inside the band")
-                    events.append(self._closed_event(int(rows[i]), reason=reason, values=values, i=i))
+                    events.append(self.announce.closed(row, i, wave, reason))
+            self.evidence.clear(rows[changed])
             self.counters["events_opened"] += int(trans.opened.sum())
             self.counters["events_closed"] += int(trans.closed.sum())
-        # Learn from the step, with the value clipped to the band once the band is trusted.
-        y_fit = np.where(judged, np.clip(y, lower, upper), y)
-        ctx.shape_y = np.where(judged, np.clip(y, centre - SHAPE_CLIP * half, centre + SHAPE_CLIP * half), y)
-        loss_scale = np.where(scale > 0, scale, np.maximum(np.abs(centre), 1.0))
-        # Members are judged on what really happened (the loss cap bounds a spike's effect).
-        self.blend.update(sel, rule, preds, ready, y, loss_scale)
-        for fc in self.forecasters:
-            fc.update(ctx, y_fit)
-        has_centre = any_ready
-        if has_centre.all():
-            self.band.update(ctx, y_fit - centre)
-        elif has_centre.any():
-            sub = StepContext.build(rows[has_centre], rule[has_centre], start[has_centre],
-                                    step[has_centre], ctx.age[has_centre],
-                                    None if local is None else local[has_centre])
-            self.band.update(sub, (y_fit - centre)[has_centre])
-        if trans.relearn.any():
-            rr = rows[trans.relearn]
-            delta = trans.relearn_delta[trans.relearn]
-            for fc in self.forecasters:
-                fc.shift(rr, delta)
+        self.judge.learn(ctx, y, a, judged, trans.side != 0, in_run)
+        if rl.drifting.any():
+            self.counters["drifts_kept_open"] += int(rl.drifting.sum())
+        if back.any():
+            rb = rows[back]
+            self.judge.shift(rb, self.runs.undo[rb])
+            self.runs.went_back(rb)
+            self.counters["returns_to_previous_level"] += rb.shape[0]
+        if rl.relearn.any():
+            rr = rows[rl.relearn]
+            self.judge.shift(rr, rl.delta[rl.relearn])
+            b = self.breaches
+            b.relearned[rr] = np.where(b.status[rr] != 0, 1, b.relearned[rr])
             self.counters["relearns"] += rr.shape[0]
         return events
 
-    # ------------------------------------------------------------ events
-
-    def _base(self, row: int, i: int, values) -> dict:
-        start, step, y, centre, lower, upper, score, weights = values
-        rule = self.config.rules[int(self.table.rule[row])]
-        metric, labels = self.table.meta[row]
-        w = {m: float(weights[j, i]) for j, m in enumerate(self.members) if weights[j, i] > 0}
-        return dict(series=self.table.keys[row], metric=metric, labels=dict(labels),
-                    rule=rule.name, step_start=float(start[i]),
-                    step_end=float(start[i] + step[i]), observed=float(y[i]),
-                    expected=float(centre[i]), lower=float(lower[i]), upper=float(upper[i]),
-                    score=float(score[i]), width=rule.width, weights=w)
-
-    def _opened_event(self, row: int, i: int, values) -> BreachEvent:
-        c = self.confirm
-        return BreachEvent(type=OPENED, direction="above" if c.status[row] > 0 else "below",
-                           started=float(c.since[row]), **self._base(row, i, values))
-
-    def _closed_event(self, row: int, *, reason: str, values, i: int = 0) -> BreachEvent:
-        """Closed event at wave index ``i``; ``values=None`` for an evicted series (no step)."""
-        c = self.confirm
-        rule = self.config.rules[int(self.table.rule[row])]
-        key = self.table.keys[row]
-        if values is None:  # evicted: no step of its own; report the last known outside step
-            metric, labels = self.table.meta[row]
-            step = float(self.table.step[row])
-            base = dict(series=key, metric=metric, labels=dict(labels), rule=rule.name,
-                        step_start=float(c.last_out[row]) - step, step_end=float(c.last_out[row]),
-                        observed=math.nan, expected=math.nan, lower=math.nan, upper=math.nan,
-                        score=math.nan, width=rule.width, weights={})
-            c.status[row] = 0
-        else:
-            base = self._base(row, i, values)
-        worst = float(c.worst[row])
-        return BreachEvent(
-            type=CLOSED, direction="above" if worst >= 0 else "below",
-            started=float(c.since[row]), duration=float(c.last_out[row] - c.since[row]),
-            worst_score=worst, reason=reason,
-            opened_id=event_id(OPENED, rule.name, key, float(c.decided[row])), **base)
+    def _set_since(self, row: int, i: int, wave: breach_events.Wave, threshold: float) -> None:
+        """Start of the breach: the oldest step in the evidence window that was unusual on the
+        breach's side (the opening step itself when none was)."""
+        side = int(self.breaches.status[row])
+        k = int(wave.window[i])
+        ring = self.evidence.ring[row].astype(np.float64)
+        pos = int(self.evidence.pos[row])
+        cut = -math.log(threshold)
+        start = float(wave.start[i])
+        step = float(wave.step_at(i))
+        since = start
+        for age in range(k):
+            if side * ring[(pos - 1 - age) % k] >= cut:
+                since = start - age * step
+        self.breaches.since[row] = since
 
     # ------------------------------------------------------------ introspection
 
@@ -463,11 +429,11 @@ class Engine:
         """Gauges about the current state (series, learning series, open breaches, bytes)."""
         n = self.table.n
         live = self.table.live()
-        learning = live & (self.band.n[:n] < self.table.warmup[:n])
+        learning = live & (self.judge.band.n[:n] < self.table.warmup[:n])
         return {
             "series_active": int(live.sum()),
             "series_learning": int(learning.sum()) + len(self.pending),
-            "breaches_open": int((live & (self.confirm.status[:n] != 0)).sum()),
+            "breaches_open": int((live & (self.breaches.status[:n] != 0)).sum()),
             "state_bytes": self.state_bytes_per_series() * int(live.sum()),
         }
 
@@ -479,7 +445,7 @@ class Engine:
         row = self.table.index.get(key)
         if row is None:
             return True
-        return bool(self.band.n[row] < self.table.warmup[row]) or row in self.pending
+        return bool(self.judge.band.n[row] < self.table.warmup[row]) or row in self.pending
 
     # ------------------------------------------------------------ snapshots
 

@@ -27,6 +27,7 @@ class SeriesTable(ColumnState):
         "lateness": ("f8", (), 0.0),
         "warmup": ("i4", (), 0),  # steps
         "relearn": ("i4", (), 0),  # steps
+        "rearm": ("f8", (), 0.0),  # seconds
         "first": ("f8", (), np.nan),  # start of the first closed step
         "last_seen": ("f8", (), -np.inf),  # latest point time
     }

@@ -1,0 +1,103 @@
+"""Breach events from a judged wave: what opened or closed, with the numbers that decided it.
+
+Kept apart from the engine so the judges and the state machine stay pure array code and the
+event shape lives in one place (peer-group events will be built beside these).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import TYPE_CHECKING
+
+import numpy as np
+
+from streamdet.core.evidence import fisher_p, fisher_surprise
+from streamdet.core.judge import Assessment
+from streamdet.events import CLOSED, OPENED, BreachEvent, event_id
+
+if TYPE_CHECKING:
+    from streamdet.core.engine import Engine
+
+
+@dataclass(slots=True)
+class Wave:
+    """The arrays of one judged wave that events quote."""
+
+    rows: np.ndarray
+    start: np.ndarray
+    step: np.ndarray | float
+    observed: np.ndarray
+    a: Assessment
+    stat: np.ndarray  # (rows, 2) Fisher's statistic per side
+    window: np.ndarray
+
+    def step_at(self, i: int) -> float:
+        return float(self.step if np.ndim(self.step) == 0 else self.step[i])
+
+
+class Announcer:
+    """Builds :class:`BreachEvent` objects from engine state (one per opened or closed row)."""
+
+    def __init__(self, engine: Engine) -> None:
+        self.engine = engine
+
+    def _evidence(self, row: int, statistic: float, k: int) -> tuple[float, float]:
+        """Combined p-value (Bonferroni over the rule's watched sides) and its surprise."""
+        sides = int(self.engine.rule_sides[int(self.engine.table.rule[row])])
+        p = float(fisher_p(np.array([statistic]), k)[0])
+        surprise = float(fisher_surprise(np.array([statistic]), k)[0]) - math.log10(sides)
+        return min(1.0, p * sides), max(0.0, surprise)
+
+    def _base(self, row: int, i: int, w: Wave) -> dict:
+        eng = self.engine
+        a = w.a
+        rule = eng.config.rules[int(eng.table.rule[row])]
+        metric, labels = eng.table.meta[row]
+        weights = {m: float(a.weights[j, i]) for j, m in enumerate(eng.members) if a.weights[j, i] > 0}
+        step = w.step_at(i)
+        return dict(series=eng.table.keys[row], metric=metric, labels=dict(labels), rule=rule.name,
+                    step_start=float(w.start[i]), step_end=float(w.start[i] + step),
+                    observed=float(w.observed[i]), expected=float(a.centre[i]),
+                    lower=float(a.lower[i]), upper=float(a.upper[i]), score=float(a.score[i]),
+                    width=rule.width, weights=weights)
+
+    def opened(self, row: int, i: int, w: Wave) -> BreachEvent:
+        b = self.engine.breaches
+        side = int(b.status[row])
+        stat = float(w.stat[i, 0 if side > 0 else 1])
+        p, surprise = self._evidence(row, stat, int(w.window[i]))
+        return BreachEvent(type=OPENED, direction="above" if side > 0 else "below",
+                           started=float(b.since[row]), p_value=p, surprise=surprise,
+                           **self._base(row, i, w))
+
+    def closed(self, row: int, i: int, w: Wave, reason: str) -> BreachEvent:
+        return self._closed(row, reason, self._base(row, i, w))
+
+    def closed_idle(self, row: int) -> BreachEvent:
+        """Closed event for a series evicted while its breach was open (no step of its own:
+        the last unusual step is reported)."""
+        eng = self.engine
+        b = eng.breaches
+        rule = eng.config.rules[int(eng.table.rule[row])]
+        metric, labels = eng.table.meta[row]
+        step = float(eng.table.step[row])
+        base = dict(series=eng.table.keys[row], metric=metric, labels=dict(labels), rule=rule.name,
+                    step_start=float(b.last_out[row]) - step, step_end=float(b.last_out[row]),
+                    observed=math.nan, expected=math.nan, lower=math.nan, upper=math.nan,
+                    score=math.nan, width=rule.width, weights={})
+        event = self._closed(row, "series went quiet", base)
+        b.status[row] = 0
+        return event
+
+    def _closed(self, row: int, reason: str, base: dict) -> BreachEvent:
+        eng = self.engine
+        b = eng.breaches
+        rule = eng.config.rules[int(eng.table.rule[row])]
+        worst = float(b.worst[row])
+        p, surprise = self._evidence(row, float(b.peak[row]), rule.confirm_steps)
+        return BreachEvent(
+            type=CLOSED, direction="above" if worst >= 0 else "below",
+            started=float(b.since[row]), duration=float(b.last_out[row] - b.since[row]),
+            worst_score=worst, reason=reason, p_value=p, surprise=surprise,
+            opened_id=event_id(OPENED, rule.name, eng.table.keys[row], float(b.decided[row])), **base)

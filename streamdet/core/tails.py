@@ -1,0 +1,142 @@
+"""Calibrated band edges and tail probabilities from each series' own residuals, per side.
+
+Residuals are normalised by the residual scale (``z = (y - expected) / scale``). Above a fixed
+threshold ``u`` (``THRESHOLD`` scales) the excesses of each side are modelled by a generalized
+Pareto distribution -- peaks over threshold (Pickands 1975; its streaming use for anomaly
+thresholds: Siffer et al., KDD 2017). The fit is the method of moments of Hosking & Wallis
+(1987) over running first and second moments of the excesses, so the state is a few numbers per
+side. With ``zeta`` the fraction of steps beyond ``u``:
+
+    P(Z > z) = zeta * (1 + xi * (z - u) / sigma) ** (-1 / xi)      for z > u
+
+and the band edge for a one-sided rarity ``q`` is its inverse. Below ``u`` the normal shape is
+assumed, scaled to the observed ``zeta``. Every statistic starts at the value it has for
+normal noise and learns as a running mean with a prior weight, so a young series gets a
+normal band and a heavy-tailed or skewed one widens its edges (each side separately) as its
+tail is observed. Excesses are capped at a few times the current edge's excess before they are
+learned, so a single huge spike cannot fatten the tail.
+
+>>> import numpy as np
+>>> xi, sigma = gpd_from_moments(np.array([0.4387]), np.array([0.3420]))
+>>> round(float(tail_quantile(np.array([NORMAL_ZETA]), xi, sigma, 0.00135)[0]), 2)  # ~3 sd
+3.0
+"""
+
+from __future__ import annotations
+
+from typing import ClassVar
+
+import numpy as np
+from scipy.special import ndtr
+
+from streamdet.core.columns import ColumnSpec, ColumnState
+
+THRESHOLD = 1.5  # u: excesses are counted beyond 1.5 residual scales (93rd percentile of N(0,1))
+# Normal noise beyond u = 1.5 (scipy.stats.truncnorm(1.5, inf)): the priors every series starts at.
+NORMAL_ZETA = 0.0668072  # P(Z > 1.5)
+NORMAL_M1 = 0.43866  # E[Z - u | Z > u]
+NORMAL_M2 = 0.34197  # E[(Z - u)^2 | Z > u]
+ZETA_PRIOR = 300.0  # pseudo-steps behind the prior exceedance rate
+EXCESS_PRIOR = 50.0  # pseudo-exceedances behind the prior excess moments
+ZETA_MEMORY = 50_000.0  # steps: effective memory of the exceedance rate once learnt
+EXCESS_MEMORY = 3_000.0  # exceedances: effective memory of the excess moments
+EXCESS_CAP = 3.0  # an excess is learnt up to this many times the current edge's excess
+XI_RANGE = (-0.45, 0.45)  # the method of moments needs a finite variance (xi < 1/2)
+P_FLOOR = 1e-300
+
+
+def gpd_from_moments(m1: np.ndarray, m2: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Shape ``xi`` and scale ``sigma`` of a generalized Pareto distribution from the first two
+    raw moments of the excesses (Hosking & Wallis 1987, method of moments), ``xi`` clipped to
+    ``XI_RANGE``. scipy.stats.genpareto uses the same sign convention (``c = xi``)."""
+    m1 = np.maximum(m1, 1e-12)
+    var = np.maximum(m2 - m1 * m1, 1e-24)
+    ratio = m1 * m1 / var
+    xi = np.clip(0.5 * (1.0 - ratio), *XI_RANGE)
+    # sigma = m1 (1 - xi): consistent with the clipped xi
+    sigma = np.maximum(m1 * (1.0 - xi), 1e-12)
+    return xi, sigma
+
+
+def tail_quantile(zeta: np.ndarray, xi: np.ndarray, sigma: np.ndarray,
+                  q: np.ndarray | float) -> np.ndarray:
+    """``z`` with ``P(Z > z) = q``; never below the threshold (the body is not modelled)."""
+    ratio = np.maximum(zeta / q, 1.0)
+    small = np.abs(xi) < 1e-6
+    safe_xi = np.where(small, 1.0, xi)
+    with np.errstate(over="ignore"):
+        excess = np.where(small, np.log(ratio), np.expm1(safe_xi * np.log(ratio)) / safe_xi)
+    return THRESHOLD + sigma * excess
+
+
+def tail_prob(z: np.ndarray, zeta: np.ndarray, xi: np.ndarray, sigma: np.ndarray,
+              edge: np.ndarray | None = None) -> np.ndarray:
+    """``P(Z >= z)`` for the side's tail model (upper side; pass ``-z`` for the lower one).
+
+    A fitted light tail (``xi < 0``) has a finite end point, which would make any value beyond
+    it infinitely surprising. Beyond ``edge`` (the band edge) such a tail is continued
+    exponentially with the GPD's own local scale there, ``sigma + xi * (edge - u)``: continuous
+    at the edge, never zero, and close to the normal tail for normal noise.
+    """
+    if edge is not None:
+        light = (xi < 0) & (z > edge)
+        z_fit = np.where(light, edge, z)
+    else:
+        light = np.zeros(np.shape(z), dtype=bool)
+        z_fit = z
+    e = np.maximum(z_fit - THRESHOLD, 0.0) / sigma
+    small = np.abs(xi) < 1e-6
+    safe_xi = np.where(small, 1.0, xi)
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        base = 1.0 + safe_xi * e
+        tail = np.where(small, np.exp(-e), np.where(base > 0, np.exp(-np.log(base) / safe_xi), 0.0))
+        body = zeta * ndtr(-z) / NORMAL_ZETA
+    if light.any():
+        local = np.maximum(sigma + xi * (z_fit - THRESHOLD), 0.1 * sigma)
+        tail = np.where(light, tail * np.exp(-(z - z_fit) / local), tail)
+    p = np.where(z > THRESHOLD, zeta * tail, np.minimum(body, 1.0))
+    return np.maximum(p, P_FLOOR)
+
+
+class TailModel(ColumnState):
+    """Per-series, per-side tail state; side 0 is above the expected value, side 1 below."""
+
+    prefix = "tails"
+    COLUMNS: ClassVar[ColumnSpec] = {
+        "zeta": ("f4", (2,), NORMAL_ZETA),
+        "m1": ("f4", (2,), NORMAL_M1),
+        "m2": ("f4", (2,), NORMAL_M2),
+        "n_excess": ("f4", (2,), 0.0),
+        "n": ("f4", (), 0.0),
+    }
+
+    def params(self, r: slice | np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """``zeta, xi, sigma`` shaped ``(rows, 2)``."""
+        zeta = self.zeta[r].astype(np.float64)
+        xi, sigma = gpd_from_moments(self.m1[r].astype(np.float64), self.m2[r].astype(np.float64))
+        return zeta, xi, sigma
+
+    def update(self, r: slice | np.ndarray, z: np.ndarray, edge: np.ndarray,
+               in_run: np.ndarray | None = None) -> None:
+        """Learn from normalised residuals ``z`` (rows,); ``edge`` (rows, 2) are the current band
+        edges in scale units (upper, lower), used to cap what one excess can teach: up to
+        ``EXCESS_CAP`` times the edge's excess, or up to the edge itself for steps of a run
+        outside the band (an incident in the making is not tail behaviour)."""
+        zs = np.stack([z, -z], axis=1)
+        n = self.n[r].astype(np.float64)[:, None]
+        over = zs > THRESHOLD
+        g = np.maximum(1.0 / (n + ZETA_PRIOR + 1.0), 1.0 / ZETA_MEMORY)
+        zeta = self.zeta[r].astype(np.float64)
+        self.zeta[r] = zeta + g * (over - zeta)
+        if over.any():
+            ne = self.n_excess[r].astype(np.float64)
+            cap = np.maximum(edge - THRESHOLD, 0.5)
+            cap = cap * (EXCESS_CAP if in_run is None else np.where(in_run, 1.0, EXCESS_CAP)[:, None])
+            x = np.minimum(zs - THRESHOLD, cap)
+            ge = np.where(over, np.maximum(1.0 / (ne + EXCESS_PRIOR + 1.0), 1.0 / EXCESS_MEMORY), 0.0)
+            m1 = self.m1[r].astype(np.float64)
+            m2 = self.m2[r].astype(np.float64)
+            self.m1[r] = m1 + ge * (x - m1)
+            self.m2[r] = m2 + ge * (x * x - m2)
+            self.n_excess[r] = ne + over
+        self.n[r] = np.minimum(n[:, 0] + 1.0, 1e9)
