@@ -71,7 +71,8 @@ class Band(ColumnState):
         r = ctx.r
         scale = self.scale[r].astype(np.float64)
         n = self.n[r]
-        cap = np.where(n >= 10, RESID_CAP * scale, np.inf)
+        # (a scale still at zero -- a flat start -- takes the first residual whole)
+        cap = np.where((n >= 10) & (scale > 0), RESID_CAP * scale, np.inf)
         a = np.minimum(np.abs(resid), cap) * SQRT_HALF_PI
         steps_per_day = 86400.0 / ctx.step
         rate = np.maximum(1.0 / np.maximum(100.0, steps_per_day), 1.0 / (n + 1.0))

@@ -99,8 +99,9 @@ class TemporalJudge:
         min_width = per_rule(self.min_width, ctx.rule)
         up_half = np.maximum(np.maximum(z_edges[:, 0] * scale, min_width), tiny)
         lo_half = np.maximum(np.maximum(z_edges[:, 1] * scale, min_width), tiny)
-        lower = centre - lo_half
         nonneg = self.band.low[sel] >= 0
+        centre = np.where(nonneg, np.maximum(centre, 0.0), centre)
+        lower = centre - lo_half
         floor_in_band = nonneg & (lower <= 0)
         lower = np.where(floor_in_band, 0.0, lower)
         eff = np.maximum(scale, tiny)
@@ -135,14 +136,14 @@ class TemporalJudge:
         if not has.any():
             return
         if has.all():
-            sub, resid, z, edges, run = ctx, y_fit - a.centre, a.score, a.z_edges, in_run
+            sub, resid, z, edges, run = ctx, y - a.centre, a.score, a.z_edges, in_run
             learn_tail = a.scale > 0
         else:
             sub = StepContext.build(ctx.rows[has], ctx.rule[has], ctx.start[has],
                                     np.broadcast_to(ctx.step, ctx.rows.shape)[has], ctx.age[has],
                                     None)
             sub.buckets = {k: (v if isinstance(v, int) else v[has]) for k, v in ctx.buckets.items()}
-            resid, z, edges, run = (y_fit - a.centre)[has], a.score[has], a.z_edges[has], in_run[has]
+            resid, z, edges, run = (y - a.centre)[has], a.score[has], a.z_edges[has], in_run[has]
             learn_tail = a.scale[has] > 0
         self.band.update(sub, resid)
         if learn_tail.all():

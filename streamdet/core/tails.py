@@ -40,7 +40,7 @@ ZETA_PRIOR = 300.0  # pseudo-steps behind the prior exceedance rate
 EXCESS_PRIOR = 50.0  # pseudo-exceedances behind the prior excess moments
 ZETA_MEMORY = 50_000.0  # steps: effective memory of the exceedance rate once learnt
 EXCESS_MEMORY = 3_000.0  # exceedances: effective memory of the excess moments
-EXCESS_CAP = 3.0  # an excess is learnt up to this many times the current edge's excess
+EXCESS_CAP = 6.0  # an excess is learnt up to this many times the current edge's excess
 XI_RANGE = (-0.45, 0.45)  # the method of moments needs a finite variance (xi < 1/2)
 P_FLOOR = 1e-300
 
