@@ -7,6 +7,7 @@ import os
 import sys
 import time
 from collections.abc import Sequence
+from pathlib import Path
 
 from streamdet.config import Config, ConfigError, load_config, parse_config
 
@@ -16,35 +17,176 @@ def _load(path: str | None) -> Config:
 
 
 def cmd_check(args: argparse.Namespace) -> int:
-    from streamdet.daemon.settings import parse_settings
+    """Validate the file as ``run`` would read it: STREAMDET_* variables applied, every daemon
+    section checked (ports, state directory, librdkafka properties). Secrets are never printed."""
+    from streamdet.daemon.settings import load_with_environment
 
     try:
-        cfg = load_config(args.config)
-        parse_settings(cfg)
+        cfg, _settings = load_with_environment(args.config)
     except ConfigError as exc:
         print(f"{args.config}: {len(exc.problems)} problem(s)", file=sys.stderr)
         for p in exc.problems:
             print(f"  {p}", file=sys.stderr)
         return 2
-    print(f"{args.config}: OK ({len(cfg.rules)} rule(s): {', '.join(r.name for r in cfg.rules)})")
+    env = sorted(k for k in os.environ if k.startswith("STREAMDET_"))
+    note = f"; with {', '.join(env)} from the environment" if env else ""
+    print(f"{args.config}: OK ({len(cfg.rules)} rule(s): {', '.join(r.name for r in cfg.rules)}{note})")
     return 0
 
 
+# `streamdet replay` exit codes (documented in the README).
+REPLAY_OK = 0
+REPLAY_USAGE = 2  # bad config, unknown format, unreadable input, unusable output path
+REPLAY_EMPTY = 3  # an input file holds no records at all
+REPLAY_ALL_BAD = 4  # an input file has records but not one usable point (e.g. a CSV without `value`)
+
+
+def _output_problems(args: argparse.Namespace) -> list[str]:
+    """What would stop the events or plots from being written, found before any work is done."""
+    problems = []
+    if args.events and args.events != "-":
+        events = Path(args.events)
+        parent = events.parent if str(events.parent) else Path(".")
+        if events.is_dir():
+            problems.append(f"--events {args.events}: is a directory; give a file name")
+        elif not parent.is_dir():
+            problems.append(f"--events {args.events}: directory {str(parent)!r} does not exist")
+        elif not os.access(parent, os.W_OK):
+            problems.append(f"--events {args.events}: directory {str(parent)!r} is not writable")
+    if args.plot:
+        plot = Path(args.plot)
+        if plot.exists() and not plot.is_dir():
+            problems.append(f"--plot {args.plot}: exists and is not a directory")
+        else:
+            existing = plot
+            while not existing.exists():
+                existing = existing.parent if existing != existing.parent else Path(".")
+            if not existing.is_dir():
+                problems.append(f"--plot {args.plot}: cannot create it under {str(existing)!r}, "
+                                "which is not a directory")
+            elif not os.access(existing, os.W_OK):
+                problems.append(f"--plot {args.plot}: {str(existing)!r} is not writable")
+    return problems
+
+
+def _duration_text(seconds: float) -> str:
+    for unit, size in (("d", 86400), ("h", 3600), ("m", 60)):
+        if seconds >= size and seconds % size == 0:
+            return f"{seconds / size:g}{unit}"
+    return f"{seconds:g}s"
+
+
+def _spacing_warnings(points, cfg: Config, *, min_gaps: int = 5, examples: int = 3) -> list[str]:
+    """Series whose typical spacing between points does not fit their rule's ``step``.
+
+    Sparser than the step (5-minute data under ``step: 60s``) leaves most steps empty: warm-up
+    takes that many times longer and breaches report late ``started`` times. Denser but not a
+    whole number of points per step makes sums and counts jump from step to step.
+    """
+    import numpy as np
+
+    if len(points) < 2:
+        return []
+    index = {k: i for i, k in enumerate(points.series)}
+    codes = np.fromiter((index[k] for k in points.keys), dtype=np.int64, count=len(points))
+    order = np.lexsort((points.time, codes))
+    c, t = codes[order], points.time[order]
+    gaps = np.diff(t)
+    keep = (c[1:] == c[:-1]) & (gaps > 0)
+    c, gaps = c[1:][keep], gaps[keep]
+    if not len(c):
+        return []
+    starts = np.flatnonzero(np.r_[True, c[1:] != c[:-1]])
+    keys = list(points.series)
+    groups: dict[tuple[str, float, float, str], list[str]] = {}
+    for lo, hi in zip(starts, [*starts[1:], len(c)], strict=True):
+        if hi - lo < min_gaps:
+            continue
+        key = keys[c[lo]]
+        metric, labels = points.series[key]
+        ri = cfg.rule_for(metric, dict(labels))
+        if ri is None or cfg.rules[ri].step is None:
+            continue
+        step, spacing = cfg.rules[ri].step, float(np.median(gaps[lo:hi]))
+        ratio = step / spacing
+        if spacing > step * 1.1:
+            kind = "sparse"
+        elif abs(ratio - round(ratio)) > 0.1:
+            kind = "uneven"
+        else:
+            continue
+        groups.setdefault((cfg.rules[ri].name, step, round(spacing, 3), kind), []).append(key)
+    out = []
+    for (rule, step, spacing, kind), series in sorted(groups.items()):
+        some = ", ".join(series[:examples]) + (", ..." if len(series) > examples else "")
+        what = (f"{len(series)} series of rule {rule!r} ({some}) have a point every "
+                f"{_duration_text(spacing)} but the rule's step is {_duration_text(step)}")
+        if kind == "sparse":
+            empty = 1 - step / spacing
+            why = (f"about {empty:.0%} of steps are empty, so warm-up takes {spacing / step:.3g}x longer "
+                   "and breaches report late 'started' times")
+        else:
+            why = "steps get an uneven number of points, so sums and counts jump from step to step"
+        out.append(f"warning: {what}: {why}; set `step: auto` or `step: {_duration_text(spacing)}` "
+                   "in the rule")
+    return out
+
+
 def cmd_replay(args: argparse.Namespace) -> int:
+    """Exit codes: 0 done, 2 usage or config problem, 3 an input is empty, 4 an input has no
+    usable record. Output paths and formats are checked before any input is read."""
+    from streamdet.codecs import format_for_path
+    from streamdet.core.points import PointBatch
     from streamdet.plots import plot_series
-    from streamdet.replay import ProgressBar, format_summary, replay, write_events
+    from streamdet.replay import ProgressBar, format_summary, read_inputs, replay, write_events
 
     try:
         cfg = _load(args.config)
     except ConfigError as exc:
         print(str(exc), file=sys.stderr)
-        return 2
+        return REPLAY_USAGE
+    problems = _output_problems(args)
+    for path in args.inputs:
+        try:
+            if args.format is None:
+                format_for_path(path)
+        except ValueError as exc:
+            problems.append(str(exc))
+    if problems:
+        for p in problems:
+            print(f"streamdet replay: {p}", file=sys.stderr)
+        return REPLAY_USAGE
+    now = time.time()
+    batches, errors, records, empty, unusable = [], [], 0, [], []
+    for path in args.inputs:
+        try:
+            points, errs, n = read_inputs([path], cfg, fmt=args.format, now=now)
+        except OSError as exc:
+            print(f"streamdet replay: {path}: cannot read ({exc.strerror or exc})", file=sys.stderr)
+            return REPLAY_USAGE
+        if n == 0:
+            empty.append(path)
+        elif len(points) == 0:
+            unusable.append((path, n, errs))
+        batches.append(points)
+        errors.extend(errs)
+        records += n
+    if empty or unusable:
+        for path in empty:
+            print(f"streamdet replay: {path}: no records (empty file?)", file=sys.stderr)
+        for path, n, errs in unusable:
+            print(f"streamdet replay: {path}: none of its {n:,} record(s) is usable; first: {errs[0]}",
+                  file=sys.stderr)
+        return REPLAY_ALL_BAD if unusable else REPLAY_EMPTY
+    inputs = (PointBatch.concat(batches), errors, records)
+    for line in _spacing_warnings(inputs[0], cfg):
+        print(line, file=sys.stderr)
     try:
         result = replay(args.inputs, cfg, fmt=args.format, record_steps=bool(args.plot),
-                        now=time.time(), progress=ProgressBar())
+                        now=now, progress=ProgressBar(), inputs=inputs)
     except (OSError, ValueError) as exc:
         print(f"streamdet replay: {exc}", file=sys.stderr)
-        return 2
+        return REPLAY_USAGE
     if args.events == "-":
         write_events(result.events, sys.stdout.buffer)
         sys.stdout.flush()
@@ -56,7 +198,7 @@ def cmd_replay(args: argparse.Namespace) -> int:
         paths = plot_series(result.engine, result.events, args.plot)
         print(f"plots: {len(paths)} PNG file(s) in {args.plot}",
               file=sys.stderr if args.events == "-" else sys.stdout)
-    return 0
+    return REPLAY_OK
 
 
 def cmd_evaluate(args: argparse.Namespace) -> int:
@@ -144,13 +286,17 @@ def cmd_run(args: argparse.Namespace) -> int:
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="streamdet", description=__doc__)
     sub = parser.add_subparsers(dest="command", required=True)
-    p = sub.add_parser("replay", help="run the detector over history files in time order")
+    p = sub.add_parser("replay", help="run the detector over history files in time order",
+                       epilog="exit codes: 0 done; 2 bad config, unknown format, unreadable input or "
+                              "unusable --events/--plot path (checked before reading); 3 an input is "
+                              "empty; 4 an input has no usable record (e.g. a CSV without `value`)")
     p.add_argument("inputs", nargs="+", help="CSV, JSON lines (.jsonl) or line-protocol (.lp) files")
     p.add_argument("--config", "-c", help="YAML config (default: built-in defaults)")
     p.add_argument("--events", "-e", help="write events as CloudEvents JSON lines here ('-' = stdout)")
     p.add_argument("--plot", metavar="DIR", help="write a PNG per series that breached into DIR")
     p.add_argument("--format", choices=("csv", "json", "influx"),
-                   help="input format (default: from each file's extension)")
+                   help="input format (default: from each file's extension; required for others, "
+                        "e.g. .txt)")
     p.set_defaults(func=cmd_replay)
     r = sub.add_parser("run", help="run the Kafka daemon until SIGTERM")
     r.add_argument("--config", "-c", help="YAML config; STREAMDET_* environment variables override it")

@@ -76,10 +76,14 @@ def read_inputs(paths: Sequence[str | Path], config: Config, *, fmt: str | None 
 
 def replay(paths: Sequence[str | Path], config: Config, *, fmt: str | None = None,
            record_steps: bool = False, now: float | None = None,
-           progress: Callable[[int, int], None] | None = None) -> ReplayResult:
-    """Run the engine over the files' points sorted by time (ties keep file order)."""
+           progress: Callable[[int, int], None] | None = None,
+           inputs: tuple[PointBatch, list[DecodeError], int] | None = None) -> ReplayResult:
+    """Run the engine over the files' points sorted by time (ties keep file order).
+
+    ``inputs`` is what :func:`read_inputs` returned, for a caller that looked at it first.
+    """
     started = time.perf_counter()
-    points, errors, records = read_inputs(paths, config, fmt=fmt, now=now)
+    points, errors, records = inputs if inputs is not None else read_inputs(paths, config, fmt=fmt, now=now)
     order = np.argsort(points.time, kind="stable")
     engine = Engine(config, record_steps=record_steps)
     events: list[BreachEvent] = []

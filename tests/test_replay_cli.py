@@ -69,3 +69,77 @@ def test_replay_jsonl_and_line_protocol_inputs(tmp_path, capsys):
     lp.write_text("\n".join(f"disk,host=h1 used={i % 5} {int((1.7e9 + 60 * i) * 1e9)}" for i in range(300)))
     assert main(["replay", str(j), str(lp)]) == 0
     assert "series            2" in capsys.readouterr().out
+
+
+# ---------------------------------------------------------------- exit codes and early checks (issue 7, item 8)
+
+def _minutes_csv(path: Path, n: int = 300, every: int = 1) -> None:
+    rows = [f"{1.7e9 + 60 * every * i:.0f},{10 + (i % 7)},a" for i in range(n)]
+    path.write_text("time,value,host\n" + "\n".join(rows) + "\n")
+
+
+def test_replay_empty_input_exits_3(tmp_path, capsys):
+    # Before: exit 0 with an all-zero summary.
+    empty = tmp_path / "empty.csv"
+    empty.write_text("")
+    assert main(["replay", str(empty)]) == 3
+    assert f"{empty}: no records (empty file?)" in capsys.readouterr().err
+
+
+def test_replay_every_record_bad_exits_4(tmp_path, capsys):
+    bad = tmp_path / "bad.jsonl"
+    bad.write_text('{"metric": "q", "time": 60, "value": "x"}\nnot json\n')
+    assert main(["replay", str(bad)]) == 4
+    err = capsys.readouterr().err
+    assert f"{bad}: none of its 2 record(s) is usable; first: {bad} line 1: value 'x' is not numeric" in err
+
+
+def test_replay_csv_without_value_column_exits_4(tmp_path, capsys):
+    good = tmp_path / "good.csv"
+    _minutes_csv(good)
+    novalue = tmp_path / "novalue.csv"
+    novalue.write_text("time,reading\n2026-01-01 00:00,1\n")
+    assert main(["replay", str(good), str(novalue)]) == 4
+    err = capsys.readouterr().err
+    assert f"{novalue}: none of its 1 record(s) is usable; first: {novalue} line 1: header lacks column(s) value" in err
+
+
+def test_replay_checks_output_paths_before_reading_anything(tmp_path, capsys):
+    # Before: a missing --events directory failed with a traceback after the whole replay.
+    data = tmp_path / "d.csv"
+    _minutes_csv(data)
+    missing = tmp_path / "nowhere" / "events.jsonl"
+    assert main(["replay", str(data), "--events", str(missing)]) == 2
+    out = capsys.readouterr()
+    assert f"--events {missing}: directory {str(missing.parent)!r} does not exist" in out.err
+    assert "records read" not in out.out
+    a_file = tmp_path / "plots.png"
+    a_file.write_text("")
+    assert main(["replay", str(data), "--plot", str(a_file)]) == 2
+    assert f"--plot {a_file}: exists and is not a directory" in capsys.readouterr().err
+    assert main(["replay", str(data), "--plot", str(a_file / "sub")]) == 2
+    assert "which is not a directory" in capsys.readouterr().err
+
+
+def test_replay_needs_format_for_txt(tmp_path, capsys):
+    # Before: a .txt CSV was read as line protocol, every line a bad record, exit 0.
+    data = tmp_path / "history.txt"
+    _minutes_csv(data)
+    assert main(["replay", str(data)]) == 2
+    assert "pass --format csv, --format json or --format influx" in capsys.readouterr().err
+    assert main(["replay", str(data), "--format", "csv"]) == 0
+
+
+def test_replay_warns_when_spacing_differs_from_step(tmp_path, capsys):
+    # Five-minute data under the default 60 s step: four steps in five are empty.
+    data = tmp_path / "load.csv"
+    _minutes_csv(data, every=5)
+    assert main(["replay", str(data)]) == 0
+    err = capsys.readouterr().err
+    assert ("warning: 1 series of rule 'default' (load{host=\"a\"}) have a point every 5m but the rule's "
+            "step is 1m: about 80% of steps are empty") in err
+    assert "set `step: auto` or `step: 5m` in the rule" in err
+    # Data that fits the step: no warning.
+    _minutes_csv(data, every=1)
+    assert main(["replay", str(data)]) == 0
+    assert "warning" not in capsys.readouterr().err

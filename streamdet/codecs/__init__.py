@@ -30,7 +30,10 @@ def decoder_for(name: str) -> Decoder:
 
 
 def format_for_path(path: str) -> str:
-    """Guess a file's format from its name: .csv, .jsonl/.json/.ndjson, .lp/.influx/.txt."""
+    """A file's format from its name: .csv, .jsonl/.json/.ndjson, .lp/.influx/.line.
+
+    Anything else (``.txt`` too, which is as often CSV as line protocol) needs ``--format``.
+    """
     lower = path.lower()
     for suffix in (".gz",):
         if lower.endswith(suffix):
@@ -39,11 +42,11 @@ def format_for_path(path: str) -> str:
         return "csv"
     if lower.endswith((".jsonl", ".json", ".ndjson")):
         return "json"
-    if lower.endswith((".lp", ".influx", ".line", ".txt")):
+    if lower.endswith((".lp", ".influx", ".line")):
         return "influx"
     raise ValueError(
-        f"cannot tell the format of {path!r} from its name; use .csv, .jsonl or .lp, "
-        "or pass --format"
+        f"cannot tell the format of {path!r} from its name (.csv, .jsonl/.json/.ndjson or "
+        ".lp/.influx/.line); pass --format csv, --format json or --format influx"
     )
 
 

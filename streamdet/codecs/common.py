@@ -3,7 +3,7 @@
 Epoch numbers are told apart by magnitude (documented in the README):
 ``|x| < 1e11`` seconds, ``< 1e14`` milliseconds, ``< 1e17`` microseconds,
 otherwise nanoseconds. ISO 8601 strings may use ``T`` or a space; a time without
-an offset is UTC. Times must fall between 1970 and 9999, and series names and labels
+an offset is UTC. Times must fall within the years 1 to 9999, and series names and labels
 have length limits (:func:`check_series`), so one hostile record cannot make a series
 key of megabytes or a time no calendar can show.
 """
@@ -24,8 +24,10 @@ MAX_SERIES_KEY = 4096
 # A message this short cannot hold a label or a key over the limits (a JSON string of n
 # characters takes at least n bytes): the JSON fast path checks only the metric name then.
 SMALL_MESSAGE = MAX_LABEL_NAME
-MIN_TIME = 0.0  # 1970-01-01T00:00:00Z
-MAX_TIME = 253402300799.0  # 9999-12-31T23:59:59Z
+# Times a calendar can show, with two weeks' margin for time zones and step arithmetic
+# (historical series such as yearly river levels reach far before 1970).
+MIN_TIME = -62134387200.0  # 0001-01-15T00:00:00Z
+MAX_TIME = 253400659200.0  # 9999-12-13T00:00:00Z
 
 
 class RecordError(ValueError):
@@ -47,7 +49,7 @@ class TimeRules:
         if not math.isfinite(t):
             raise RecordError("time is not a finite number")
         if not MIN_TIME <= t <= MAX_TIME:
-            raise RecordError(f"time {t:.6g} s is outside 1970-01-01 .. 9999-12-31")
+            raise RecordError(f"time {t:.6g} s is outside the years 1 to 9999")
         if self.now is not None and t > self.now + self.max_future:
             ahead = t - self.now
             raise RecordError(

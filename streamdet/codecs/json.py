@@ -20,6 +20,7 @@ from streamdet.codecs.common import (
     MAX_LABEL_VALUE,
     MAX_METRIC_NAME,
     MAX_SERIES_KEY,
+    MIN_TIME,
     SMALL_MESSAGE,
     Decoded,
     ErrorCollector,
@@ -52,7 +53,7 @@ def _add_fast(obj: object, builder: PointBuilder, limit: float, size: int) -> bo
     if size > SMALL_MESSAGE and labels and not _labels_fit(metric, labels):
         return False
     t, v = float(t), float(v)
-    if not (_isfinite(v) and 0.0 <= t < 1e11 and t <= limit):
+    if not (_isfinite(v) and MIN_TIME <= t < 1e11 and t <= limit):
         return False
     try:
         return builder.add_raw(metric, tuple(labels.items()) if labels else (), t, v)

@@ -6,6 +6,10 @@ are acknowledged, writes each changed partition's checkpoint durably, and only t
 the offsets. After a crash it restores the checkpoint and re-reads from the offset it covers;
 events re-emitted then carry the same ids as before, so nothing is lost and duplicates can be
 dropped by id.
+
+Poison is data: a message that cannot be decoded is counted by reason, dead-lettered and
+skipped, and even a decoder bug on one message only costs that message (logged with a
+traceback). Broker trouble and bad records are logged at most once per ``log_interval``.
 """
 
 from __future__ import annotations
@@ -24,8 +28,9 @@ from streamdet.codecs import TimeRules, decode_influx
 from streamdet.codecs.json import decode_json_messages
 from streamdet.config import Config
 from streamdet.core.engine import Engine, SnapshotError
-from streamdet.core.points import KeyCache, PointBatch, PointBuilder
+from streamdet.core.points import DecodeError, KeyCache, PointBatch, PointBuilder, shorten
 from streamdet.daemon.health import HealthServer, Metrics, reason_code
+from streamdet.daemon.logs import RateLimitedLog
 from streamdet.daemon.producer import Sink
 from streamdet.daemon.settings import DaemonSettings, redacted
 from streamdet.daemon.state_store import Checkpoint, LocalStateStore, StateError, StateStore
@@ -54,7 +59,7 @@ class Daemon:
 
     def __init__(self, config: Config, settings: DaemonSettings, *, metrics: Metrics,
                  store: StateStore | None = None, events_file: str | None = None,
-                 fresh_partitions: Iterable[TP] = ()) -> None:
+                 fresh_partitions: Iterable[TP] = (), log_interval: float = 10.0) -> None:
         self.config = config
         self.settings = settings
         self.metrics = metrics
@@ -67,26 +72,23 @@ class Daemon:
         self._last_checkpoint = time.monotonic()
         self._checkpoint_done = time.monotonic()
         self._last_probe = 0.0
-        self._error_logged: dict[int, float] = {}
+        self.log_interval = log_interval
+        self._log = RateLimitedLog(log, log_interval)
+        self._librdkafka_log = RateLimitedLog(logging.getLogger("streamdet.librdkafka"), log_interval)
         self.consumer: Consumer | None = None
         self.sink: Sink | None = None
         self.health_port: int | None = None
 
     # ------------------------------------------------------------ configuration
 
-    def _client_conf(self) -> dict[str, str]:
-        return {"bootstrap.servers": self.settings.bootstrap_servers, **self.settings.client,
-                "error_cb": self._on_error, "logger": logging.getLogger("streamdet.librdkafka")}
+    def _callbacks(self) -> dict:
+        return {"error_cb": self._on_error, "logger": self._librdkafka_log}
 
     def consumer_conf(self) -> dict:
-        s = self.settings
-        return {**self._client_conf(), "group.id": s.group_id, "enable.auto.commit": False,
-                "auto.offset.reset": "earliest", "partition.assignment.strategy": "cooperative-sticky",
-                "session.timeout.ms": int(s.session_timeout * 1000), **s.consumer}
+        return {**self.settings.consumer_properties(), **self._callbacks()}
 
     def producer_conf(self) -> dict:
-        return {**self._client_conf(), "enable.idempotence": True, "acks": "all", "linger.ms": 5,
-                "queue.buffering.max.messages": 100_000, **self.settings.producer}
+        return {**self.settings.producer_properties(), **self._callbacks()}
 
     # ------------------------------------------------------------ lifecycle
 
@@ -110,12 +112,14 @@ class Daemon:
             server = HealthServer(self.metrics, self.ready, host, port).start()
             self.health_port = server.port
             log.info("health on http://%s:%d (/metrics, /healthz, /readyz)", host, server.port)
-        log.info("consuming %s from %s as group %s; librdkafka options %s",
+        log.info("consuming %s from %s as group %s; librdkafka options %s, consumer %s, producer %s",
                  ",".join(self.settings.input_topics), self.settings.bootstrap_servers,
-                 self.settings.group_id, redacted(self.settings.client))
+                 self.settings.group_id, redacted(self.settings.client), redacted(self.settings.consumer),
+                 redacted(self.settings.producer))
         self.sink = Sink(metrics=self.metrics, source=self.settings.source,
                          producer_conf=self.producer_conf(), output_topic=self.settings.output_topic,
-                         dead_letter_topic=self.settings.dead_letter_topic, events_file=self.events_file)
+                         dead_letter_topic=self.settings.dead_letter_topic, events_file=self.events_file,
+                         log_interval=self.log_interval)
         self.consumer = Consumer(self.consumer_conf())
         self.consumer.subscribe(list(self.settings.input_topics), on_assign=self._on_assign,
                                 on_revoke=self._on_revoke, on_lost=self._on_lost)
@@ -132,6 +136,8 @@ class Daemon:
                 if now - self._last_probe >= 2.0:
                     self._probe()
                     self._update_gauges()
+                    self._log.flush()
+                    self._librdkafka_log.flush()
         except (StateError, SnapshotError, StartupError) as exc:
             log.error("%s", exc)
             code = 2
@@ -192,7 +198,31 @@ class Daemon:
     # ------------------------------------------------------------ processing
 
     def _decode(self, key: TP, items: list[Message], part: PartitionState, rules: TimeRules) -> PointBatch:
-        """Decode a partition's messages into one batch; dead-letter the messages with bad records."""
+        """Decode a partition's messages into one batch; dead-letter the messages with bad records.
+
+        Decoders never raise on bad input; should one raise anyway (a bug), the batch is decoded
+        again message by message and only the message that raises is lost (dead-lettered).
+        """
+        try:
+            return self._decode_batch(key, items, part, rules)
+        except Exception:
+            log.exception("decoding a batch of %d message(s) from %s:%d failed; retrying one by one",
+                          len(items), *key)
+        batches = []
+        for msg in items:
+            try:
+                batches.append(self._decode_batch(key, [msg], part, rules))
+            except Exception as exc:
+                where = f"{key[0]}/{key[1]}@{msg.offset()}"
+                log.exception("decoder error on %s; the message is dead-lettered and skipped", where)
+                self.metrics.records_in.inc()
+                reason = f"internal error in the decoder ({type(exc).__name__}: {shorten(str(exc), 80)})"
+                self._dead_letter(msg, [DecodeError(position=where, reason=reason,
+                                                    record=shorten(msg.value() or b""))])
+        return PointBatch.concat(batches)
+
+    def _decode_batch(self, key: TP, items: list[Message], part: PartitionState,
+                      rules: TimeRules) -> PointBatch:
         topic, partition = key
         if self.config.input.format == "influx":
             builder = PointBuilder(part.key_cache)
@@ -240,8 +270,8 @@ class Daemon:
         for e in errors:
             self.metrics.records_bad.labels(reason_code(e.reason)).inc()
         first = errors[0]
-        if self._should_log(-1):
-            log.warning("bad record %s: %s (%d in this message)", first.position, first.reason, len(errors))
+        self._log.log(logging.WARNING, "bad record %s: %s (%d in this message)", first.position,
+                      first.reason, len(errors), key="bad record")
         headers = [
             ("streamdet-error", first.reason.encode()),
             ("streamdet-error-position", first.position.encode()),
@@ -251,7 +281,8 @@ class Daemon:
             ("source-partition", str(msg.partition()).encode()),
             ("source-offset", str(msg.offset()).encode()),
         ]
-        self.sink.dead_letter(msg.value() or b"", msg.key(), headers)
+        self.sink.dead_letter(msg.value() or b"", msg.key(), headers,
+                              f"{msg.topic()}/{msg.partition()}@{msg.offset()}")
 
     def _count(self, part: PartitionState) -> None:
         c = part.engine.counters
@@ -298,18 +329,10 @@ class Daemon:
 
     # ------------------------------------------------------------ health
 
-    def _should_log(self, code: int, every: float = 10.0) -> bool:
-        now = time.monotonic()
-        if now - self._error_logged.get(code, -1e9) >= every:
-            self._error_logged[code] = now
-            return True
-        return False
-
     def _on_error(self, err: KafkaError) -> None:
         if err.code() in (KafkaError._ALL_BROKERS_DOWN, KafkaError._TRANSPORT, KafkaError._RESOLVE):
             self._connected = False
-        if self._should_log(err.code()):
-            log.warning("kafka: %s (retrying with backoff)", err.str())
+        self._log.log(logging.WARNING, "kafka: %s (retrying with backoff)", err.str(), key="kafka")
 
     def _probe(self) -> None:
         """Ask the brokers for the partitions' end offsets: a connectivity check and the lag gauge."""
@@ -326,8 +349,7 @@ class Daemon:
             self._connected = True
         except KafkaException as exc:
             self._connected = False
-            if self._should_log(-2):
-                log.warning("brokers not reachable (%s); retrying", exc)
+            self._log.log(logging.WARNING, "brokers not reachable (%s); retrying", exc, key="kafka")
 
     def _update_gauges(self) -> None:
         stats = Counter()

@@ -56,6 +56,10 @@ class Metrics:
         self.points_dropped = c("points_dropped", "Points dropped for other reasons", ["reason"])
         self.records_bad = c("records_bad", "Records that could not be decoded", ["reason"])
         self.dead_letters = c("dead_letters", "Messages sent to the dead-letter topic")
+        self.dead_letters_truncated = c("dead_letters_truncated",
+                                        "Dead letters too large to send whole, sent as truncated copies")
+        self.undeliverable = c("undeliverable", "Messages that can never be delivered (too large or "
+                               "refused), logged and skipped, by kind (event or dead_letter)", ["kind"])
         self.events_out = c("events_out", "Breach events delivered", ["type"])
         self.delivery_failures = c("delivery_failures", "Event deliveries that failed (retried)")
         self.checkpoints = c("checkpoints", "Checkpoints written")

@@ -4,6 +4,12 @@ Deliveries are acknowledged asynchronously; a failed delivery is counted and pro
 never dropped. ``flush`` reports whether everything handed over so far is acknowledged, which
 is what a checkpoint waits for. A full producer queue blocks the caller (the consumer loop) in
 ``poll`` until there is room: backpressure instead of unbounded memory.
+
+A message the producer can never deliver (over ``message.max.bytes``, or refused by the broker
+as too large or invalid) is not retried: a dead letter goes again as a truncated copy with a
+``streamdet-truncated`` header, and what still cannot go is logged with where it came from,
+counted in ``streamdet_undeliverable_total{kind}`` and skipped, so one message never stalls
+the partition or the checkpoints behind it.
 """
 
 from __future__ import annotations
@@ -15,14 +21,34 @@ from collections import deque
 from collections.abc import Sequence
 from typing import IO
 
-from confluent_kafka import KafkaError, Producer
+from confluent_kafka import KafkaError, KafkaException, Producer
 
 from streamdet.daemon.health import Metrics
+from streamdet.daemon.logs import RateLimitedLog
 from streamdet.events import CONTENT_TYPE, BreachEvent
 
 log = logging.getLogger("streamdet.producer")
 
 Headers = list[tuple[str, bytes]]
+# Delivery errors that no retry can cure for this message.
+PERMANENT = frozenset({KafkaError.MSG_SIZE_TOO_LARGE, KafkaError.RECORD_LIST_TOO_LARGE,
+                       KafkaError.INVALID_MSG_SIZE, KafkaError.INVALID_RECORD})
+DEFAULT_MAX_MESSAGE_BYTES = 1_000_000  # librdkafka's message.max.bytes default
+_ENVELOPE = 1024  # room left for the record framing librdkafka adds to key, value and headers
+
+
+class _Message:
+    """One message handed to the producer, with what is needed to retry or report it."""
+
+    __slots__ = ("decided_at", "event_type", "headers", "key", "kind", "source", "topic", "truncated",
+                 "value")
+
+    def __init__(self, topic: str, key: bytes, value: bytes, headers: Headers, *, kind: str,
+                 source: str, event_type: str | None = None, decided_at: float = 0.0,
+                 truncated: bool = False) -> None:
+        self.topic, self.key, self.value, self.headers = topic, key, value, headers
+        self.kind, self.source, self.event_type, self.decided_at = kind, source, event_type, decided_at
+        self.truncated = truncated
 
 
 class Sink:
@@ -30,7 +56,7 @@ class Sink:
 
     def __init__(self, *, metrics: Metrics, source: str, producer_conf: dict[str, str] | None,
                  output_topic: str | None, dead_letter_topic: str | None,
-                 events_file: str | None = None) -> None:
+                 events_file: str | None = None, log_interval: float = 10.0) -> None:
         self.metrics = metrics
         self.source = source
         self.output_topic = output_topic
@@ -38,9 +64,12 @@ class Sink:
         self.file: IO[bytes] | None = open(events_file, "ab") if events_file else None  # noqa: SIM115
         needs_kafka = (output_topic and not events_file) or dead_letter_topic
         self.producer = Producer(producer_conf) if needs_kafka and producer_conf is not None else None
+        self.max_message_bytes = int((producer_conf or {}).get("message.max.bytes",
+                                                                DEFAULT_MAX_MESSAGE_BYTES))
         self.in_flight = 0
-        self.retry: deque[tuple[str, bytes, bytes, Headers, str | None, float]] = deque()
+        self.retry: deque[_Message] = deque()
         self.backpressure_waits = 0
+        self.log = RateLimitedLog(log, log_interval)
 
     # ------------------------------------------------------------ sending
 
@@ -55,38 +84,75 @@ class Sink:
             return
         headers = [("content-type", CONTENT_TYPE.encode())]
         for e in events:
-            self._produce(self.output_topic, e.series.encode(), e.to_json(self.source), headers,
-                          e.type, decided_at)
+            self._produce(_Message(self.output_topic, e.series.encode(), e.to_json(self.source), headers,
+                                   kind="event", source=f"{e.type} {e.id}", event_type=e.type,
+                                   decided_at=decided_at))
 
-    def dead_letter(self, value: bytes, key: bytes | None, headers: Headers) -> None:
+    def dead_letter(self, value: bytes, key: bytes | None, headers: Headers, source: str = "") -> None:
+        """Send an undecodable message on; ``source`` (topic/partition@offset) is for the log."""
         if self.dead_letter_topic is None or self.producer is None:
             return
-        self._produce(self.dead_letter_topic, key or b"", value, headers, None, time.monotonic())
+        self._produce(_Message(self.dead_letter_topic, key or b"", value, headers, kind="dead_letter",
+                               source=source))
         self.metrics.dead_letters.inc()
 
-    def _produce(self, topic: str, key: bytes, value: bytes, headers: Headers, event_type: str | None,
-                 decided_at: float) -> None:
+    def _produce(self, m: _Message) -> None:
         assert self.producer is not None
 
         def delivered(err: KafkaError | None, _msg) -> None:
             self.in_flight -= 1
             if err is not None:
+                if err.code() in PERMANENT:
+                    self._undeliverable(m, err.str())
+                    return
                 self.metrics.delivery_failures.inc()
-                log.warning("delivery to %s failed (%s); retrying", topic, err.str())
-                self.retry.append((topic, key, value, headers, event_type, decided_at))
+                self.log.log(logging.WARNING, "delivery to %s failed (%s); retrying", m.topic, err.str(),
+                             key=("delivery", m.topic))
+                self.retry.append(m)
                 return
-            if event_type is not None:
-                self.metrics.events_out.labels(event_type).inc()
-                self.metrics.delivery_delay.observe(max(0.0, time.monotonic() - decided_at))
+            if m.event_type is not None:
+                self.metrics.events_out.labels(m.event_type).inc()
+                self.metrics.delivery_delay.observe(max(0.0, time.monotonic() - m.decided_at))
 
         while True:
             try:
-                self.producer.produce(topic, value=value, key=key, headers=headers, on_delivery=delivered)
+                self.producer.produce(m.topic, value=m.value, key=m.key, headers=m.headers,
+                                      on_delivery=delivered)
                 self.in_flight += 1
                 return
             except BufferError:
                 self.backpressure_waits += 1
                 self.producer.poll(0.05)
+            except KafkaException as exc:  # refused before it was queued: too large, bad argument
+                self._undeliverable(m, exc.args[0].str() if exc.args else str(exc))
+                return
+
+    def _undeliverable(self, m: _Message, why: str) -> None:
+        """A dead letter goes again as a truncated copy (once); anything else is logged and counted."""
+        if m.kind == "dead_letter" and not m.truncated:
+            copy = self._truncated(m)
+            if copy is not None:
+                self.metrics.dead_letters_truncated.inc()
+                self.log.log(logging.WARNING, "dead letter from %s refused (%s); sending the first %d of "
+                             "%d bytes", m.source, why, len(copy.value), len(m.value), key="truncated")
+                self._produce(copy)
+                return
+        self.metrics.undeliverable.labels(m.kind).inc()
+        what = "dead letter" if m.kind == "dead_letter" else "event"
+        self.log.log(logging.ERROR, "%s from %s (%d bytes) cannot be delivered to %s (%s); skipped",
+                     what, m.source or "?", len(m.key) + len(m.value), m.topic, why,
+                     key=("undeliverable", m.kind))
+
+    def _truncated(self, m: _Message) -> _Message | None:
+        """A copy of a dead letter cut to fit ``message.max.bytes``; None if even the headers do not."""
+        room = (self.max_message_bytes - _ENVELOPE - len(m.key)
+                - sum(len(k) + len(v) for k, v in m.headers) - 64)
+        if room <= 0:
+            return None
+        headers = [*m.headers, ("streamdet-truncated", b"true"),
+                   ("streamdet-original-size", str(len(m.value)).encode())]
+        return _Message(m.topic, m.key, m.value[:min(room, max(0, len(m.value) - 1))], headers,
+                        kind=m.kind, source=m.source, truncated=True)
 
     # ------------------------------------------------------------ acknowledgements
 
@@ -94,7 +160,7 @@ class Sink:
         if self.producer is not None:
             self.producer.poll(0)
             while self.retry:
-                self._produce(*self.retry.popleft())
+                self._produce(self.retry.popleft())
 
     def flush(self, timeout: float) -> bool:
         """Wait until everything sent so far is acknowledged (or written and synced)."""

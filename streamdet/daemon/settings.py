@@ -3,8 +3,13 @@
 Environment variables override the file for container use: ``STREAMDET_<SECTION>_<KEY>``
 (for example ``STREAMDET_KAFKA_BOOTSTRAP_SERVERS``, ``STREAMDET_STATE_DIR``), and
 ``STREAMDET_LIBRDKAFKA_<NAME>`` sets a librdkafka property for both clients, with ``_``
-standing for ``.`` (``STREAMDET_LIBRDKAFKA_SASL_PASSWORD`` -> ``sasl.password``). Secrets are
-never logged: :func:`redacted` masks them.
+standing for ``.`` (``STREAMDET_LIBRDKAFKA_SASL_PASSWORD`` -> ``sasl.password``). A variable's
+value stays a string unless its key is a list (``input_topics``: comma-separated) or a number
+(``batch_size``). Secrets are never logged: :func:`redacted` masks them.
+
+:func:`parse_settings` checks everything ``run`` would otherwise fail on later: the port, the
+state directory, and the librdkafka properties (through librdkafka's own validation, without
+connecting).
 """
 
 from __future__ import annotations
@@ -13,12 +18,20 @@ import os
 import re
 from collections.abc import Mapping
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any
 
-from streamdet.config import Config, ConfigError, _Section
+from confluent_kafka import Consumer, KafkaException, Producer
 
-_SECRET = re.compile(r"(password|secret|token|credential|key(?!s)|\.pem|jaas)", re.I)
+from streamdet.config import Config, ConfigError, _Section, read_config_file
+
+# Property names whose values are secrets (issue 7: password, secret, key, token and
+# sasl.oauthbearer.config, which carries a client secret); credential, .pem and jaas besides.
+_SECRET = re.compile(r"(password|secret|key|token|oauthbearer\.config|credential|\.pem|jaas)", re.I)
 _SECTIONS = ("kafka", "state", "health", "output", "logging")
+# Environment values are strings, except for these keys.
+_ENV_LISTS = {("kafka", "input_topics")}
+_ENV_NUMBERS = {("kafka", "batch_size")}
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -46,6 +59,18 @@ class DaemonSettings:
         host, _, port = self.health_address.rpartition(":")
         return host or "127.0.0.1", int(port)
 
+    def consumer_properties(self) -> dict[str, Any]:
+        """librdkafka properties of the consumer, before the daemon adds its callbacks."""
+        return {"bootstrap.servers": self.bootstrap_servers, **self.client, "group.id": self.group_id,
+                "enable.auto.commit": False, "auto.offset.reset": "earliest",
+                "partition.assignment.strategy": "cooperative-sticky",
+                "session.timeout.ms": int(self.session_timeout * 1000), **self.consumer}
+
+    def producer_properties(self) -> dict[str, Any]:
+        """librdkafka properties of the producer (events and dead letters)."""
+        return {"bootstrap.servers": self.bootstrap_servers, **self.client, "enable.idempotence": True,
+                "acks": "all", "linger.ms": 5, "queue.buffering.max.messages": 100_000, **self.producer}
+
 
 def apply_environment(raw: Mapping[str, Any], env: Mapping[str, str]) -> dict[str, Any]:
     """A copy of the decoded YAML with ``STREAMDET_*`` variables applied."""
@@ -62,18 +87,20 @@ def apply_environment(raw: Mapping[str, Any], env: Mapping[str, str]) -> dict[st
         for section in _SECTIONS:
             if rest.startswith(section.upper() + "_"):
                 key = rest[len(section) + 1:].lower()
-                out.setdefault(section, {})[key] = _coerce(value)
+                out.setdefault(section, {})[key] = _coerce(section, key, value)
     return out
 
 
-def _coerce(value: str) -> Any:
-    if "," in value:
+def _coerce(section: str, key: str, value: str) -> Any:
+    """A string stays a string unless the key is a list or a number."""
+    if (section, key) in _ENV_LISTS:
         return [v.strip() for v in value.split(",") if v.strip()]
-    for cast in (int, float):
-        try:
-            return cast(value)
-        except ValueError:
-            pass
+    if (section, key) in _ENV_NUMBERS:
+        for cast in (int, float):
+            try:
+                return cast(value)
+            except ValueError:
+                pass
     return value
 
 
@@ -123,11 +150,16 @@ def parse_settings(config: Config) -> DaemonSettings:
     k.done()
     s = _Section(config.extra.get("state"), "state", problems)
     kw["state_dir"] = s.text("dir", d.state_dir)
+    if (why := _unusable_directory(kw["state_dir"])) is not None:
+        s.bad("dir", why)
     s.done()
     h = _Section(config.extra.get("health"), "health", problems)
     address = h.text("address", d.health_address)
     if not re.fullmatch(r"[^:]*:\d{1,5}", address):
         h.bad("address", f"expected host:port, got {address!r}")
+        address = d.health_address
+    elif int(address.rpartition(":")[2]) > 65535:
+        h.bad("address", f"port must be 0..65535 (0: any free port), got {address!r}")
         address = d.health_address
     kw["health_address"] = address
     h.done()
@@ -140,9 +172,72 @@ def parse_settings(config: Config) -> DaemonSettings:
     lg.done()
     if config.input.format == "csv":
         problems.append("input.format: the daemon reads json or influx messages; csv is for replay")
+    if not problems:
+        problems.extend(librdkafka_problems(DaemonSettings(**kw)))
     if problems:
         raise ConfigError(problems)
     return DaemonSettings(**kw)
+
+
+def _unusable_directory(path: str) -> str | None:
+    """Why ``path`` cannot be (or become) a writable directory, or None."""
+    p = Path(path)
+    if p.exists():
+        if not p.is_dir():
+            return f"{path!r} exists and is not a directory"
+        if not os.access(p, os.W_OK | os.X_OK):
+            return f"directory {path!r} is not writable"
+        return None
+    parent = p.absolute().parent
+    while not parent.exists():
+        parent = parent.parent
+    if not parent.is_dir():
+        return f"cannot create {path!r}: {str(parent)!r} is not a directory"
+    if not os.access(parent, os.W_OK | os.X_OK):
+        return f"cannot create {path!r}: {str(parent)!r} is not writable"
+    return None
+
+
+class _Discard:
+    """Takes librdkafka's log lines while a client is built only to be validated."""
+
+    def log(self, level: int, msg: str, *args: object) -> None:
+        pass
+
+
+_QUIET = _Discard()
+
+
+def librdkafka_problems(settings: DaemonSettings) -> list[str]:
+    """librdkafka's own verdict on both clients' properties (unknown names, bad values, conflicts
+    such as idempotence without acks=all), found by creating each client without brokers to
+    contact and dropping it. Secret values are masked in the messages."""
+    problems = []
+    for name, props, client in (("consumer", settings.consumer_properties(), Consumer),
+                                ("producer", settings.producer_properties(), Producer)):
+        conf = {k: v for k, v in props.items() if k != "bootstrap.servers"}
+        conf.update({"logger": _QUIET, "error_cb": lambda _err: None})
+        try:
+            handle = client(conf)
+        except KafkaException as exc:
+            err = exc.args[0]
+            text = err.str() if hasattr(err, "str") else str(err)
+            problems.append(f"kafka ({name} properties from kafka.client / kafka.{name}): "
+                            f"{_mask_values(text.strip(), props)}")
+            continue
+        except (TypeError, ValueError) as exc:
+            problems.append(f"kafka ({name} properties): {_mask_values(str(exc), props)}")
+            continue
+        if isinstance(handle, Consumer):
+            handle.close()
+    return problems
+
+
+def _mask_values(text: str, props: Mapping[str, Any]) -> str:
+    for k, v in props.items():
+        if _SECRET.search(k) and isinstance(v, str) and v:
+            text = text.replace(v, "***")
+    return text
 
 
 def redacted(props: Mapping[str, str]) -> dict[str, str]:
@@ -152,20 +247,10 @@ def redacted(props: Mapping[str, str]) -> dict[str, str]:
 
 def load_with_environment(path: str | None, env: Mapping[str, str] | None = None):
     """Read the YAML (or defaults), apply ``STREAMDET_*`` variables, validate both parts."""
-    import yaml
-
     from streamdet.config import parse_config
 
     env = os.environ if env is None else env
-    raw: dict[str, Any] = {}
-    if path:
-        try:
-            with open(path, encoding="utf-8") as fh:
-                raw = yaml.safe_load(fh) or {}
-        except OSError as exc:
-            raise ConfigError([f"{path}: cannot read ({exc.strerror})"]) from None
-        except yaml.YAMLError as exc:
-            raise ConfigError([f"{path}: not valid YAML ({exc})"]) from None
+    raw = read_config_file(path) if path else {}
     if not isinstance(raw, Mapping):
         raise ConfigError(["(top level): expected a mapping"])
     config = parse_config(apply_environment(raw, env))
