@@ -18,7 +18,7 @@ from typing import ClassVar
 import numpy as np
 
 from streamdet.core.columns import ColumnSpec, ColumnState, per_rule
-from streamdet.core.forecast.base import HOUR_OF_DAY, HOUR_OF_WEEK, WEEK, StepContext, visits
+from streamdet.core.forecast.base import DAY, HOUR_OF_DAY, HOUR_OF_WEEK, WEEK, StepContext, visits
 
 SQRT_HALF_PI = float(np.sqrt(np.pi / 2.0))
 MIN_RATIO_MEMORY = 360.0  # visits; coarse steps give too few visits to trust a bucket alone
@@ -47,9 +47,12 @@ class Band(ColumnState):
         key = ("band.ratio",)
         if key in ctx.memo:
             return ctx.memo[key]
-        prior = np.maximum(3600.0 / ctx.step, 3.0)  # one hour's worth of steps
-        v24 = visits(ctx, HOUR_OF_DAY)
-        v168 = visits(ctx, HOUR_OF_WEEK)
+        per_bucket = np.maximum(3600.0 / ctx.step, 1.0)
+        prior = np.maximum(per_bucket, 3.0)  # one hour's worth of steps
+        # weights count completed cycles only: the steps of the current visit (perhaps an
+        # incident in the making) must not widen the band they are judged by
+        v24 = np.floor(ctx.age / DAY) * per_bucket
+        v168 = np.floor(ctx.age / WEEK) * per_bucket
         r24 = self.ratio24[ctx.at(24)].astype(np.float64)
         r168 = self.ratio[ctx.at(168)].astype(np.float64)
         day = (v24 * r24 + prior) / (v24 + prior)
@@ -88,7 +91,10 @@ class Band(ColumnState):
             at = ctx.at(period)
             ratio = column[at].astype(np.float64)
             memory = weeks * (WEEK / profile.cycle) * per_bucket
-            g = np.maximum(1.0 / np.maximum(memory, MIN_RATIO_MEMORY), 1.0 / (visits(ctx, profile) + 1.0))
+            # running mean behind a prior of one hour's worth of steps at the stored value, so
+            # the steps of one visit (perhaps an incident in the making) move it only so far
+            g = np.maximum(1.0 / np.maximum(memory, MIN_RATIO_MEMORY),
+                           1.0 / (visits(ctx, profile) + per_bucket))
             column[at] = np.where(learn, ratio + g * (target - ratio), ratio).astype(dtype)
         self.scale[r] = new_scale.astype(np.float32)
         self.n[r] = np.minimum(n + 1, 2**31 - 2)

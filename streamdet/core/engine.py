@@ -369,7 +369,8 @@ class Engine:
         side = np.where(y > a.upper, 1, np.where(y < a.lower, -1, 0)) * judged
         side = np.where(back, 0, side)
         in_run = self.runs.run[sel] != 0
-        rl = self.runs.step(sel, judged, side, y - a.centre, a.scale, tab.relearn[sel], start, step)
+        rl = self.runs.step(sel, judged, side, y - a.centre, y - a.season, a.scale, tab.relearn[sel],
+                            start, step)
         if self.log is not None:
             p_two = np.minimum(1.0, 2.0 * np.minimum(a.p_up, a.p_lo))
             self.log.add(rows, start, y, np.where(a.any_ready, a.centre, np.nan),

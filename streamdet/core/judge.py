@@ -46,6 +46,7 @@ class Assessment:
     p_up: np.ndarray  # P(a value at least this high), from the upper tail
     p_lo: np.ndarray  # P(a value at least this low), from the lower tail
     score: np.ndarray  # (observed - expected) / scale
+    season: np.ndarray  # the seasonal term of the Holt-Winters member (0 where it has none yet)
 
 
 class TemporalJudge:
@@ -87,6 +88,7 @@ class TemporalJudge:
     def assess(self, ctx: StepContext, y: np.ndarray) -> Assessment:
         sel = ctx.r
         outs = [fc.predict(ctx) for fc in self.forecasters]
+        season, found = self.forecasters[1].seasonal_term(ctx)
         preds = np.concatenate([o[0] for o in outs])
         ready = np.concatenate([o[1] for o in outs]) & self.member_enabled[:, ctx.rule]
         centre, weights, any_ready = self.blend.combine(sel, preds, ready)
@@ -111,7 +113,7 @@ class TemporalJudge:
         # Nothing below zero exists for such a series, so the lower side carries no evidence.
         p_lo = np.where(floor_in_band, 1.0, p_lo)
         return Assessment(preds, ready, weights, centre, any_ready, scale, lower, centre + up_half,
-                          z_edges, p_up, p_lo, score)
+                          z_edges, p_up, p_lo, score, np.where(found, season, 0.0))
 
     def learn(self, ctx: StepContext, y: np.ndarray, a: Assessment, judged: np.ndarray,
               in_breach: np.ndarray, in_run: np.ndarray) -> None:
@@ -133,23 +135,22 @@ class TemporalJudge:
             fc.update(ctx, y_fit)
         self.band.note_values(sel, y)
         has = a.any_ready & ~in_breach
-        if not has.any():
-            return
-        if has.all():
-            sub, resid, z, edges, run = ctx, y - a.centre, a.score, a.z_edges, in_run
-            learn_tail = a.scale > 0
-        else:
-            sub = StepContext.build(ctx.rows[has], ctx.rule[has], ctx.start[has],
-                                    np.broadcast_to(ctx.step, ctx.rows.shape)[has], ctx.age[has],
-                                    None)
-            sub.buckets = {k: (v if isinstance(v, int) else v[has]) for k, v in ctx.buckets.items()}
-            resid, z, edges, run = (y - a.centre)[has], a.score[has], a.z_edges[has], in_run[has]
-            learn_tail = a.scale[has] > 0
-        self.band.update(sub, resid)
-        if learn_tail.all():
-            self.tails.update(sub.r, z, edges, run)
-        elif learn_tail.any():
-            self.tails.update(sub.rows[learn_tail], z[learn_tail], edges[learn_tail], run[learn_tail])
+        # the residual scale learns from steps outside runs only; the tails from both (capped)
+        self._learn_band(ctx, y - a.centre, has & ~in_run & (a.scale >= 0))
+        tails = has & (a.scale > 0)
+        if tails.all():
+            self.tails.update(ctx.r, a.score, a.z_edges, in_run)
+        elif tails.any():
+            self.tails.update(ctx.rows[tails], a.score[tails], a.z_edges[tails], in_run[tails])
+
+    def _learn_band(self, ctx: StepContext, resid: np.ndarray, mask: np.ndarray) -> None:
+        if mask.all():
+            self.band.update(ctx, resid)
+        elif mask.any():
+            sub = StepContext.build(ctx.rows[mask], ctx.rule[mask], ctx.start[mask],
+                                    np.broadcast_to(ctx.step, ctx.rows.shape)[mask], ctx.age[mask], None)
+            sub.buckets = {k: (v if isinstance(v, int) else v[mask]) for k, v in ctx.buckets.items()}
+            self.band.update(sub, resid[mask])
 
     def shift(self, rows: np.ndarray, delta: np.ndarray) -> None:
         for fc in self.forecasters:

@@ -2,14 +2,15 @@
 
 A run starts at a step outside the band and goes on while steps stay on that side of the
 expected value (inside the band or not); crossing the expected value ends it. When a run reaches
-``relearn_after`` steps, the mean residual of its last third is compared with that of its
-middle third (the first third holds the transition and is left out): a shift that stays flat is
-forgiven, a drift that keeps going is not.
+``relearn_after`` steps, the mean deseasonalised value (the value minus the Holt-Winters
+seasonal term) of its last third is compared with that of its middle third (the first third
+holds the transition and is left out). Values, not residuals: a trend-following forecaster
+chases a drift, so its residuals can stay flat while the series keeps moving.
 
-* *shift*: the residuals stopped growing away from the band (the last third is not further out
-  than the middle third by more than a tenth of its mean or three standard errors). The
-  forecasters are moved by the run's recent offset, so the deliberate change stops alerting;
-* *drift*: they keep growing. Nothing is re-levelled, the open breach stays open, and the run
+* *shift*: the values stopped moving away (the last third is not further out than the middle
+  third by more than three standard errors). The forecasters are moved by the run's recent
+  offset, so the deliberate change stops alerting;
+* *drift*: they keep moving. Nothing is re-levelled, the open breach stays open, and the run
   starts over, so the question is asked again ``relearn_after`` later.
 
 After a re-level the previous level is remembered for ``RETURN_MEMORY`` times ``relearn_after``
@@ -27,8 +28,7 @@ import numpy as np
 from streamdet.core.columns import ColumnSpec, ColumnState
 
 RUN_SMOOTHING = 0.3  # weight of the newest residual in the run's offset estimate
-DRIFT_SHARE = 0.1  # growth between the run's middle and last thirds, as a share of the last
-DRIFT_SE = 3.0  # ... and in standard errors of that difference
+DRIFT_SE = 3.0  # growth between the run's middle and last thirds, in standard errors
 RETURN_SLACK = 0.25  # share of the shift by which a return may fall short of the old level
 RETURN_MEMORY = 4.0  # how long (in relearn periods, at least a day) a previous level is remembered
 
@@ -45,7 +45,7 @@ class RunTracker(ColumnState):
     COLUMNS: ClassVar[ColumnSpec] = {
         "run": ("i4", (), 0),  # signed run length outside on one side
         "offset": ("f8", (), 0.0),
-        "s_mid": ("f8", (), 0.0),  # sum of the residuals in the run's middle third
+        "s_mid": ("f8", (), 0.0),  # sum of the deseasonalised values in the run's middle third
         "s_last": ("f8", (), 0.0),  # ... and in its last third
         "undo": ("f8", (), 0.0),  # offset back to the level before the last re-level
         "undo_until": ("f8", (), -np.inf),
@@ -69,8 +69,9 @@ class RunTracker(ColumnState):
         self.run[rows] = 0
 
     def step(self, r: slice | np.ndarray, judged: np.ndarray, side: np.ndarray, resid: np.ndarray,
-             scale: np.ndarray, relearn_steps: np.ndarray, start: np.ndarray,
+             value: np.ndarray, scale: np.ndarray, relearn_steps: np.ndarray, start: np.ndarray,
              step: np.ndarray | float) -> Relevel:
+        """``value``: the observed value minus its seasonal term (what a drift moves)."""
         run = self.run[r]
         offset = self.offset[r]
         s_mid, s_last = self.s_mid[r], self.s_last[r]
@@ -82,8 +83,8 @@ class RunTracker(ColumnState):
         crossed = (run != 0) & ~same & (side == 0)
         go = judged & same
         i = np.abs(run)  # index of this step in the run
-        s_mid = np.where(go & (i >= n - 2 * third) & (i < n - third), s_mid + resid, s_mid)
-        s_last = np.where(go & (i >= n - third), s_last + resid, s_last)
+        s_mid = np.where(go & (i >= n - 2 * third) & (i < n - third), s_mid + value, s_mid)
+        s_last = np.where(go & (i >= n - third), s_last + value, s_last)
         run = np.where(go, run + run_side, run)
         offset = np.where(go, (1 - RUN_SMOOTHING) * offset + RUN_SMOOTHING * resid, offset)
         begin = judged & fresh
@@ -99,7 +100,7 @@ class RunTracker(ColumnState):
             last = s_last / m
             growth = np.sign(run) * (last - s_mid / m)
             se = scale * np.sqrt(2.0 / m)
-            drifting = due & (growth > np.maximum(DRIFT_SHARE * np.abs(last), DRIFT_SE * se))
+            drifting = due & (growth > DRIFT_SE * se)
         relearn = due & ~drifting
         delta = np.where(relearn, offset, 0.0)
         run = np.where(due, 0, run)

@@ -88,6 +88,10 @@ class HoltWinters(DampedHolt):
             ctx.memo["seasonal"] = (out, found)
         return out, found
 
+    def seasonal_term(self, ctx: StepContext) -> tuple[np.ndarray, np.ndarray]:
+        """This step's seasonal term per row and whether a profile served it."""
+        return self._served(ctx)
+
     def predict(self, ctx: StepContext) -> tuple[np.ndarray, np.ndarray]:
         season, found = self._served(ctx)
         ready = found & (self.n[ctx.r] >= self.warmup)
