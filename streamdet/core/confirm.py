@@ -5,8 +5,9 @@ A breach opens on one side when that side's combined evidence (Fisher's statisti
 step that is itself unusual on that side. It closes after ``clear.steps`` judged steps in a
 row that were *ordinary* on that side (not even mildly unusual: inside a band one standard
 deviation narrower than the breach band, which gives hysteresis). After a close the series is
-*re-arming* for ``rearm``: it re-opens during that time only on evidence clearly stronger than the closed breach's peak (``REARM_MARGIN`` on the
-statistic, a hundred times rarer), so a noisy series does not flap.
+*re-arming* for ``rearm``: it re-opens during that time only on evidence clearly stronger
+than the closed breach's peak (``REARM_MARGIN`` on the statistic, a hundred times rarer), so
+a noisy series does not flap.
 """
 
 from __future__ import annotations
