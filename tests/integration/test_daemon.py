@@ -74,7 +74,8 @@ def test_events_reach_the_output_topic_and_equal_replay(broker, tmp_path):
     points = waterflow_points(sites=2)
     broker.produce(topics[0], as_messages(points))
     expected = replay_events(points)
-    assert len(expected) == 12  # 3 WaterFlow low segments x opened/closed x 2 sites
+    # 3 WaterFlow low segments + 1 breach after the first recovery, x opened/closed x 2 sites
+    assert len(expected) == 16
     daemon, metrics = make_daemon(broker, tmp_path, topics)
     with Running(daemon):
         assert wait_for(lambda: metrics.registry.get_sample_value("streamdet_points_accepted_total")
@@ -88,7 +89,7 @@ def test_events_reach_the_output_topic_and_equal_replay(broker, tmp_path):
     for d in docs:
         assert d == orjson.loads(by_id[d["id"]].to_json())
     assert metrics.registry.get_sample_value("streamdet_events_out_total",
-                                             {"type": "streamdet.breach.opened"}) == 6
+                                             {"type": "streamdet.breach.opened"}) == 8
 
 
 def test_malformed_records_go_to_the_dead_letter_topic(broker, tmp_path):
@@ -164,4 +165,4 @@ def test_influx_line_protocol_input(broker, tmp_path):
     renamed = [{**p, "metric": "waterflow_flow"} for p in points]
     expected = replay_events(renamed)
     got = [parse_cloudevent(m.value()) for m in broker.read_all(topics[1], expect=len(expected))]
-    assert sorted(d["id"] for d in got) == sorted(e.id for e in expected) and len(expected) == 6
+    assert sorted(d["id"] for d in got) == sorted(e.id for e in expected) and len(expected) == 8
