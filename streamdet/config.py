@@ -146,10 +146,27 @@ class Rule:
     blend: BlendParams = field(default_factory=BlendParams)
 
     @property
+    def edge_rarity(self) -> float:
+        """One-sided tail probability of a band edge: ``Q(width)``, as rare as ``width``
+        standard deviations on normal noise."""
+        return _normal_sf(self.width)
+
+    @property
     def open_rarity(self) -> float:
         """Combined p-value of the evidence window that opens a breach, over all watched sides:
         as rare as two independent steps outside the band, ``(2 Q(width))**2``."""
-        return (math.erfc(self.width / math.sqrt(2.0))) ** 2
+        return (2.0 * self.edge_rarity) ** 2
+
+    @property
+    def unusual_rarity(self) -> float:
+        """A step rarer than this on a side is *unusual* there (it may open a breach and does
+        not count towards clearing): the edge of a band one standard deviation narrower."""
+        return _normal_sf(max(self.width - 1.0, 0.5))
+
+
+def _normal_sf(x: float) -> float:
+    """P(Z > x) for a standard normal Z."""
+    return 0.5 * math.erfc(x / math.sqrt(2.0))
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)

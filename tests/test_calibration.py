@@ -119,7 +119,7 @@ def test_fisher_combination_equals_scipy():
     win = EvidenceWindow(1)
     ps = rng.uniform(1e-4, 1, 40)
     for i, p in enumerate(ps):
-        stat = win.add(slice(0, 1), np.array([0]), np.array([True]), np.array([p]), np.array([1.0]), 5)
+        stat = win.add(slice(0, 1), np.array([True]), np.array([p]), np.array([1.0]), 5)
         last = ps[max(0, i - 4): i + 1]
         assert stat[0, 0] == pytest.approx(-2 * np.log(last).sum(), rel=2e-3)
 

@@ -70,7 +70,8 @@ class Band(ColumnState):
         """Remember the lowest value seen (natural bounds)."""
         self.low[r] = np.minimum(self.low[r], y)
 
-    def update(self, ctx: StepContext, resid: np.ndarray) -> None:
+    def update(self, ctx: StepContext, resid: np.ndarray, mask: np.ndarray) -> None:
+        """Learn from the residuals of the rows where ``mask`` holds (the others keep their state)."""
         r = ctx.r
         scale = self.scale[r].astype(np.float64)
         n = self.n[r]
@@ -84,7 +85,7 @@ class Band(ColumnState):
         per_bucket = np.maximum(3600.0 / ctx.step, 1.0)
         with np.errstate(invalid="ignore", divide="ignore"):
             target = np.where(scale > 0, np.minimum(a / scale, 20.0), 1.0)
-        learn = (n >= 10) & (ctx.step <= 3600.0)
+        learn = mask & (n >= 10) & (ctx.step <= 3600.0)
         weeks = per_rule(self.memory_weeks, ctx.rule)
         for profile, column, period, dtype in ((HOUR_OF_WEEK, self.ratio, 168, np.float16),
                                                (HOUR_OF_DAY, self.ratio24, 24, np.float32)):
@@ -96,5 +97,5 @@ class Band(ColumnState):
             g = np.maximum(1.0 / np.maximum(memory, MIN_RATIO_MEMORY),
                            1.0 / (visits(ctx, profile) + per_bucket))
             column[at] = np.where(learn, ratio + g * (target - ratio), ratio).astype(dtype)
-        self.scale[r] = new_scale.astype(np.float32)
-        self.n[r] = np.minimum(n + 1, 2**31 - 2)
+        self.scale[r] = np.where(mask, new_scale, scale).astype(np.float32)
+        self.n[r] = np.where(mask, np.minimum(n + 1, 2**31 - 2), n)

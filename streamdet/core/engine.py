@@ -46,7 +46,6 @@ SNAPSHOT_VERSION = 1
 AUTO_STEP_POINTS = 6
 NICE_STEPS = (1, 2, 5, 10, 15, 20, 30, 60, 120, 300, 600, 900, 1200, 1800, 3600, 7200, 10800,
               21600, 43200, 86400, 604800)
-DIRECTION_CODES = {"both": 0, "above": 1, "below": 2}
 
 
 def infer_step(times: list[float]) -> float | None:
@@ -102,7 +101,6 @@ class Engine:
         self.rule_counter = np.array([r.kind == "counter" for r in rules], dtype=bool)
         self.rule_window = np.array([r.confirm_steps for r in rules], np.int64)
         self.rule_clear = np.array([r.clear_steps for r in rules], np.int64)
-        self.rule_direction = np.array([DIRECTION_CODES[r.direction] for r in rules], np.int64)
         # Fisher's statistic that opens a breach, per rule and side (inf: side not watched);
         # the open rarity is split evenly over the watched sides (Bonferroni).
         self.rule_sides = np.array([2 if r.direction == "both" else 1 for r in rules], np.int64)
@@ -110,11 +108,7 @@ class Engine:
                                     if r.direction in (d, "both") else np.inf
                                     for d in ("above", "below")]
                                    for r, s in zip(rules, self.rule_sides.tolist(), strict=True)])
-        # A step is ordinary (it counts towards clearing) when its tail probability on the
-        # breach's side is above that of a band one standard deviation narrower.
-        from scipy.stats import norm
-
-        self.rule_unusual = np.array([norm.sf(max(r.width - 1.0, 0.5)) for r in rules])
+        self.rule_unusual = np.array([r.unusual_rarity for r in rules])
         self.any_auto = any(r.step is None for r in rules)
         self.any_lateness = any(r.lateness > 0 for r in rules)
         self.any_counter = bool(self.rule_counter.any())
@@ -361,7 +355,7 @@ class Engine:
             a.p_up = np.where(back, 1.0, a.p_up)
             a.p_lo = np.where(back, 1.0, a.p_lo)
         window = self.rule_window[rule]
-        stat = self.evidence.add(sel, rows, judged, a.p_up, a.p_lo, window)
+        stat = self.evidence.add(sel, judged, a.p_up, a.p_lo, window)
         threshold = self.rule_unusual[rule]
         unusual = np.stack([a.p_up < threshold, a.p_lo < threshold], axis=1)
         trans = self.breaches.step(sel, judged, stat, self.rule_crit[rule], unusual, a.score, start,

@@ -64,8 +64,8 @@ class EvidenceWindow(ColumnState):
         "sums": ("f8", (2,), 0.0),
     }
 
-    def add(self, r: slice | np.ndarray, rows: np.ndarray, judged: np.ndarray, p_up: np.ndarray,
-            p_lo: np.ndarray, window: np.ndarray | int) -> np.ndarray:
+    def add(self, r: slice | np.ndarray, judged: np.ndarray, p_up: np.ndarray, p_lo: np.ndarray,
+            window: np.ndarray | int) -> np.ndarray:
         """Push one judged step per row; returns Fisher's statistic per side, shape ``(rows, 2)``.
         Rows not judged keep their state (their statistic is returned unchanged)."""
         up_smaller = p_up <= p_lo
@@ -73,8 +73,9 @@ class EvidenceWindow(ColumnState):
         signed = np.where(up_smaller, 1.0, -1.0) * np.minimum(neg, NEG_LOG_CAP)
         new = signed.astype(np.float16)
         pos = self.pos[r].astype(np.int64)
-        idx = rows if isinstance(r, np.ndarray) else np.arange(r.start, r.stop)
-        old = self.ring[idx, pos].astype(np.float64)
+        idx = r if isinstance(r, np.ndarray) else np.arange(r.start, r.stop)
+        old16 = self.ring[idx, pos]
+        old = old16.astype(np.float64)
         newf = new.astype(np.float64)
         sums = self.sums[r]
         add = np.stack([np.maximum(newf, 0.0), np.maximum(-newf, 0.0)], axis=1)
@@ -82,7 +83,7 @@ class EvidenceWindow(ColumnState):
         j = judged[:, None]
         sums = np.where(j, np.maximum(sums + add - sub, 0.0), sums)
         self.sums[r] = sums
-        self.ring[idx, pos] = np.where(judged, new, self.ring[idx, pos])
+        self.ring[idx, pos] = np.where(judged, new, old16)
         self.pos[r] = np.where(judged, (pos + 1) % window, pos).astype(np.uint8)
         return 2.0 * sums
 

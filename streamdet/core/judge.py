@@ -12,7 +12,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.stats import norm
 
 from streamdet.config import Config
 from streamdet.core.band import Band
@@ -77,8 +76,7 @@ class TemporalJudge:
         self.band = Band(capacity, scale_floor=[r.scale_floor for r in rules],
                          memory_weeks=[x.seasonal.memory_weeks for x in f])
         self.tails = TailModel(capacity)
-        # one-sided rarity of a band edge: as rare as `width` sd on normal noise
-        self.edge_rarity = np.array([norm.sf(r.width) for r in rules])
+        self.edge_rarity = np.array([r.edge_rarity for r in rules])
         self.min_width = np.array([r.min_width for r in rules])
 
     @property
@@ -136,21 +134,8 @@ class TemporalJudge:
         self.band.note_values(sel, y)
         has = a.any_ready & ~in_breach
         # the residual scale learns from steps outside runs only; the tails from both (capped)
-        self._learn_band(ctx, y - a.centre, has & ~in_run & (a.scale >= 0))
-        tails = has & (a.scale > 0)
-        if tails.all():
-            self.tails.update(ctx.r, a.score, a.z_edges, in_run)
-        elif tails.any():
-            self.tails.update(ctx.rows[tails], a.score[tails], a.z_edges[tails], in_run[tails])
-
-    def _learn_band(self, ctx: StepContext, resid: np.ndarray, mask: np.ndarray) -> None:
-        if mask.all():
-            self.band.update(ctx, resid)
-        elif mask.any():
-            sub = StepContext.build(ctx.rows[mask], ctx.rule[mask], ctx.start[mask],
-                                    np.broadcast_to(ctx.step, ctx.rows.shape)[mask], ctx.age[mask], None)
-            sub.buckets = {k: (v if isinstance(v, int) else v[mask]) for k, v in ctx.buckets.items()}
-            self.band.update(sub, resid[mask])
+        self.band.update(ctx, y - a.centre, has & ~in_run)
+        self.tails.update(sel, a.score, a.z_edges, in_run, has & (a.scale > 0))
 
     def shift(self, rows: np.ndarray, delta: np.ndarray) -> None:
         for fc in self.forecasters:

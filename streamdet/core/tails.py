@@ -117,21 +117,22 @@ class TailModel(ColumnState):
         return zeta, xi, sigma
 
     def update(self, r: slice | np.ndarray, z: np.ndarray, edge: np.ndarray,
-               in_run: np.ndarray | None = None) -> None:
+               in_run: np.ndarray, mask: np.ndarray) -> None:
         """Learn from normalised residuals ``z`` (rows,); ``edge`` (rows, 2) are the current band
         edges in scale units (upper, lower), used to cap what one excess can teach: up to
         ``EXCESS_CAP`` times the edge's excess, or up to the edge itself for steps of a run
-        outside the band (an incident in the making is not tail behaviour)."""
+        outside the band (an incident in the making is not tail behaviour). Only rows where
+        ``mask`` holds learn."""
         zs = np.stack([z, -z], axis=1)
         n = self.n[r].astype(np.float64)[:, None]
-        over = zs > THRESHOLD
-        g = np.maximum(1.0 / (n + ZETA_PRIOR + 1.0), 1.0 / ZETA_MEMORY)
+        m = mask[:, None]
+        over = (zs > THRESHOLD) & m
+        g = np.where(m, np.maximum(1.0 / (n + ZETA_PRIOR + 1.0), 1.0 / ZETA_MEMORY), 0.0)
         zeta = self.zeta[r].astype(np.float64)
         self.zeta[r] = zeta + g * (over - zeta)
         if over.any():
             ne = self.n_excess[r].astype(np.float64)
-            cap = np.maximum(edge - THRESHOLD, 0.5)
-            cap = cap * (EXCESS_CAP if in_run is None else np.where(in_run, 1.0, EXCESS_CAP)[:, None])
+            cap = np.maximum(edge - THRESHOLD, 0.5) * np.where(in_run, 1.0, EXCESS_CAP)[:, None]
             x = np.minimum(zs - THRESHOLD, cap)
             ge = np.where(over, np.maximum(1.0 / (ne + EXCESS_PRIOR + 1.0), 1.0 / EXCESS_MEMORY), 0.0)
             m1 = self.m1[r].astype(np.float64)
@@ -139,4 +140,4 @@ class TailModel(ColumnState):
             self.m1[r] = m1 + ge * (x - m1)
             self.m2[r] = m2 + ge * (x * x - m2)
             self.n_excess[r] = ne + over
-        self.n[r] = np.minimum(n[:, 0] + 1.0, 1e9)
+        self.n[r] = np.where(mask, np.minimum(n[:, 0] + 1.0, 1e9), n[:, 0])
