@@ -77,3 +77,13 @@ def per_rule(table: np.ndarray, rule: np.ndarray) -> np.ndarray | float:
     if table.shape[0] == 1:
         return table[0].item()
     return table[rule]
+
+
+def row_numbers(r: slice | np.ndarray) -> np.ndarray:
+    """The row numbers a slice or an index array selects."""
+    return r if isinstance(r, np.ndarray) else np.arange(r.start, r.stop)
+
+
+def take(x: np.ndarray | float, idx: np.ndarray) -> np.ndarray | float:
+    """``x[idx]`` for a per-row array, ``x`` itself for a scalar shared by every row."""
+    return x[idx] if isinstance(x, np.ndarray) and x.ndim else x

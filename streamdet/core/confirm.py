@@ -17,7 +17,7 @@ from typing import ClassVar
 
 import numpy as np
 
-from streamdet.core.columns import ColumnSpec, ColumnState
+from streamdet.core.columns import ColumnSpec, ColumnState, row_numbers, take
 
 REARM_MARGIN = 2.0 * np.log(100.0)  # Fisher's X grows by 2 ln(100) for evidence 100x rarer
 
@@ -47,53 +47,68 @@ class BreachState(ColumnState):
     }
 
     def step(self, r: slice | np.ndarray, judged: np.ndarray, stat: np.ndarray, crit: np.ndarray,
-             unusual: np.ndarray, score: np.ndarray, start: np.ndarray, step: np.ndarray,
+             unusual: np.ndarray, score: np.ndarray, start: np.ndarray, step: np.ndarray | float,
              clear_steps: np.ndarray | int, rearm: np.ndarray | float) -> Transitions:
         """One judged step per row.
 
         ``stat`` and ``crit`` are ``(rows, 2)`` (side 0 above, 1 below; ``crit`` is inf for a
         side the rule does not watch); ``unusual`` is ``(rows, 2)``: the step is not ordinary on
-        that side.
+        that side. Only rows with an open breach or enough evidence to open one can change, so
+        the work is done on those alone.
         """
-        state = self.status[r]
-        was_open = state != 0
-        peak = self.peak[r].astype(np.float64)
-        rearming = start < self.rearm_until[r]
-        need = np.where(rearming[:, None], np.maximum(crit, peak[:, None] + REARM_MARGIN), crit)
+        n = judged.shape[0]
+        opened = np.zeros(n, dtype=bool)
+        closed = np.zeros(n, dtype=bool)
+        after_relearn = np.zeros(n, dtype=bool)
+        side = self.status[r].astype(np.int64)
+        was_open = side != 0
         # a breach opens at an unusual step: diffuse evidence (a string of barely unusual steps,
         # as autocorrelated residuals give) waits until a step is unusual in its own right
+        may_open = (unusual & (stat >= crit)).any(axis=1)
+        act = np.flatnonzero(judged & (was_open | may_open))
+        if act.shape[0]:
+            rows = row_numbers(r)[act]
+            o, c, a, s = self._step(rows, stat[act], crit[act], unusual[act], score[act], start[act],
+                                    take(step, act), take(clear_steps, act), take(rearm, act))
+            opened[act], closed[act], after_relearn[act], side[act] = o, c, a, s
+        return Transitions(opened, closed, side, after_relearn)
+
+    def _step(self, rows, stat, crit, unusual, score, start, step, clear_steps, rearm):
+        state = self.status[rows]
+        was_open = state != 0
+        peak = self.peak[rows].astype(np.float64)
+        rearming = start < self.rearm_until[rows]
+        need = np.where(rearming[:, None], np.maximum(crit, peak[:, None] + REARM_MARGIN), crit)
         margin = np.where(unusual, stat - need, -np.inf)
-        can_open = judged & ~was_open & (margin >= 0).any(axis=1)
+        can_open = ~was_open & (margin >= 0).any(axis=1)
         open_side = np.where(margin[:, 0] >= margin[:, 1], 1, -1)
         # the open breach's side: its unusual flag and statistic
         cur = np.where(state >= 0, 0, 1)
         idx = np.arange(state.shape[0])
         cur_unusual = unusual[idx, cur]
-        clear_run = self.clear_run[r]
-        clear_run = np.where(judged & was_open, np.where(cur_unusual, 0, clear_run + 1), clear_run)
-        closed = judged & was_open & (clear_run >= clear_steps)
-        stays = judged & was_open & ~closed
-        worst = self.worst[r].astype(np.float64)
+        clear_run = self.clear_run[rows]
+        clear_run = np.where(was_open, np.where(cur_unusual, 0, clear_run + 1), clear_run)
+        closed = was_open & (clear_run >= clear_steps)
+        stays = was_open & ~closed
+        worst = self.worst[rows].astype(np.float64)
         worst = np.where(stays & cur_unusual & (np.abs(score) > np.abs(worst)), score, worst)
         peak = np.where(stays, np.maximum(peak, stat[idx, cur]), peak)
-        last_out = np.where(stays & cur_unusual, start + step, self.last_out[r])
-        if can_open.any():
-            worst = np.where(can_open, score, worst)
-            side_i = np.where(open_side > 0, 0, 1)
-            peak = np.where(can_open, stat[idx, side_i], peak)
-            state = np.where(can_open, open_side, state).astype(np.int8)
-            clear_run = np.where(can_open, 0, clear_run)
-            last_out = np.where(can_open, start + step, last_out)
-            self.decided[r] = np.where(can_open, start, self.decided[r])
-        relearned = self.relearned[r]
+        last_out = np.where(stays & cur_unusual, start + step, self.last_out[rows])
+        worst = np.where(can_open, score, worst)
+        peak = np.where(can_open, stat[idx, np.where(open_side > 0, 0, 1)], peak)
+        state = np.where(can_open, open_side, state)
+        clear_run = np.where(can_open, 0, clear_run)
+        last_out = np.where(can_open, start + step, last_out)
+        self.decided[rows] = np.where(can_open, start, self.decided[rows])
+        relearned = self.relearned[rows]
         closed_after_relearn = closed & (relearned != 0)
         state = np.where(closed, 0, state)
         clear_run = np.where(closed, 0, clear_run)
-        self.rearm_until[r] = np.where(closed, start + step + rearm, self.rearm_until[r])
-        self.status[r] = state.astype(np.int8)
-        self.clear_run[r] = clear_run
-        self.worst[r] = worst.astype(np.float32)
-        self.peak[r] = peak.astype(np.float32)
-        self.last_out[r] = last_out
-        self.relearned[r] = np.where(closed | can_open, 0, relearned)
-        return Transitions(can_open, closed, state.astype(np.int64), closed_after_relearn)
+        self.rearm_until[rows] = np.where(closed, start + step + rearm, self.rearm_until[rows])
+        self.status[rows] = state.astype(np.int8)
+        self.clear_run[rows] = clear_run
+        self.worst[rows] = worst.astype(np.float32)
+        self.peak[rows] = peak.astype(np.float32)
+        self.last_out[rows] = last_out
+        self.relearned[rows] = np.where(closed | can_open, 0, relearned)
+        return can_open, closed, closed_after_relearn, state

@@ -25,7 +25,7 @@ from typing import ClassVar
 
 import numpy as np
 
-from streamdet.core.columns import ColumnSpec, ColumnState
+from streamdet.core.columns import ColumnSpec, ColumnState, row_numbers, take
 
 RUN_SMOOTHING = 0.3  # weight of the newest residual in the run's offset estimate
 DRIFT_SE = 3.0  # growth between the run's middle and last thirds, in standard errors
@@ -57,6 +57,8 @@ class RunTracker(ColumnState):
         plus a quarter of the shift: the forecasters have crept since) and outside today's band
         on that side."""
         undo = self.undo[r]
+        if not undo.any():
+            return np.zeros(undo.shape[0], dtype=bool)
         off = resid - undo
         slack = RETURN_SLACK * np.abs(undo)
         back = ((start < self.undo_until[r]) & (undo != 0) & (off <= up_half + slack)
@@ -71,45 +73,51 @@ class RunTracker(ColumnState):
     def step(self, r: slice | np.ndarray, judged: np.ndarray, side: np.ndarray, resid: np.ndarray,
              value: np.ndarray, scale: np.ndarray, relearn_steps: np.ndarray, start: np.ndarray,
              step: np.ndarray | float) -> Relevel:
-        """``value``: the observed value minus its seasonal term (what a drift moves)."""
-        run = self.run[r]
-        offset = self.offset[r]
-        s_mid, s_last = self.s_mid[r], self.s_last[r]
+        """``value``: the observed value minus its seasonal term (what a drift moves). Only rows
+        in a run or outside the band can change, so the work is done on those alone."""
+        n = judged.shape[0]
+        relearn = np.zeros(n, dtype=bool)
+        drifting = np.zeros(n, dtype=bool)
+        delta = np.zeros(n)
+        act = np.flatnonzero(judged & ((self.run[r] != 0) | (side != 0)))
+        if act.shape[0]:
+            rows = row_numbers(r)[act]
+            rl, dr, de = self._step(rows, side[act], resid[act], value[act], scale[act],
+                                    take(relearn_steps, act), start[act], take(step, act))
+            relearn[act], drifting[act], delta[act] = rl, dr, de
+        return Relevel(relearn, delta, drifting)
+
+    def _step(self, rows, side, resid, value, scale, relearn_steps, start, step):
+        run = self.run[rows]
+        offset = self.offset[rows]
+        s_mid, s_last = self.s_mid[rows], self.s_last[rows]
         n = np.asarray(relearn_steps, dtype=np.int64)
         third = np.maximum(n // 3, 1)
         run_side = np.sign(run)
         same = (run != 0) & (np.sign(resid) == run_side)
         fresh = (side != 0) & ~same
         crossed = (run != 0) & ~same & (side == 0)
-        go = judged & same
         i = np.abs(run)  # index of this step in the run
-        s_mid = np.where(go & (i >= n - 2 * third) & (i < n - third), s_mid + value, s_mid)
-        s_last = np.where(go & (i >= n - third), s_last + value, s_last)
-        run = np.where(go, run + run_side, run)
-        offset = np.where(go, (1 - RUN_SMOOTHING) * offset + RUN_SMOOTHING * resid, offset)
-        begin = judged & fresh
-        run = np.where(begin, side, run)
-        offset = np.where(begin, resid, offset)
-        s_mid = np.where(begin, 0.0, s_mid)
-        s_last = np.where(begin, 0.0, s_last)
-        run = np.where(judged & crossed, 0, run)
-        due = judged & (np.abs(run) >= relearn_steps)
-        drifting = np.zeros_like(due)
-        if due.any():
-            m = third.astype(np.float64)
-            last = s_last / m
-            growth = np.sign(run) * (last - s_mid / m)
-            se = scale * np.sqrt(2.0 / m)
-            drifting = due & (growth > DRIFT_SE * se)
+        s_mid = np.where(same & (i >= n - 2 * third) & (i < n - third), s_mid + value, s_mid)
+        s_last = np.where(same & (i >= n - third), s_last + value, s_last)
+        run = np.where(same, run + run_side, run)
+        offset = np.where(same, (1 - RUN_SMOOTHING) * offset + RUN_SMOOTHING * resid, offset)
+        run = np.where(fresh, side, run)
+        offset = np.where(fresh, resid, offset)
+        s_mid = np.where(fresh, 0.0, s_mid)
+        s_last = np.where(fresh, 0.0, s_last)
+        run = np.where(crossed, 0, run)
+        due = np.abs(run) >= relearn_steps
+        m = third.astype(np.float64)
+        growth = np.sign(run) * (s_last - s_mid) / m
+        drifting = due & (growth > DRIFT_SE * scale * np.sqrt(2.0 / m))
         relearn = due & ~drifting
         delta = np.where(relearn, offset, 0.0)
-        run = np.where(due, 0, run)
-        self.run[r] = run
-        self.offset[r] = np.where(due, 0.0, offset)
-        self.s_mid[r] = np.where(due, 0.0, s_mid)
-        self.s_last[r] = np.where(due, 0.0, s_last)
-        if relearn.any():
-            memory = np.maximum(RETURN_MEMORY * relearn_steps * step, 86400.0)
-            self.undo[r] = np.where(relearn, -delta, self.undo[r])
-            self.undo_until[r] = np.where(relearn, start + memory, self.undo_until[r])
-        return Relevel(relearn, delta, drifting)
+        self.run[rows] = np.where(due, 0, run)
+        self.offset[rows] = np.where(due, 0.0, offset)
+        self.s_mid[rows] = np.where(due, 0.0, s_mid)
+        self.s_last[rows] = np.where(due, 0.0, s_last)
+        memory = np.maximum(RETURN_MEMORY * relearn_steps * step, 86400.0)
+        self.undo[rows] = np.where(relearn, -delta, self.undo[rows])
+        self.undo_until[rows] = np.where(relearn, start + memory, self.undo_until[rows])
+        return relearn, drifting, delta
