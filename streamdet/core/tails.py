@@ -29,7 +29,7 @@ from typing import ClassVar
 import numpy as np
 from scipy.special import ndtr
 
-from streamdet.core.columns import ColumnSpec, ColumnState
+from streamdet.core.columns import ColumnSpec, ColumnState, row_numbers
 
 THRESHOLD = 1.5  # u: excesses are counted beyond 1.5 residual scales (93rd percentile of N(0,1))
 # Normal noise beyond u = 1.5 (scipy.stats.truncnorm(1.5, inf)): the priors every series starts at.
@@ -78,23 +78,24 @@ def tail_prob(z: np.ndarray, zeta: np.ndarray, xi: np.ndarray, sigma: np.ndarray
     exponentially with the GPD's own local scale there, ``sigma + xi * (edge - u)``: continuous
     at the edge, never zero, and close to the normal tail for normal noise.
     """
-    if edge is not None:
-        light = (xi < 0) & (z > edge)
-        z_fit = np.where(light, edge, z)
-    else:
-        light = np.zeros(np.shape(z), dtype=bool)
-        z_fit = z
-    e = np.maximum(z_fit - THRESHOLD, 0.0) / sigma
-    small = np.abs(xi) < 1e-6
-    safe_xi = np.where(small, 1.0, xi)
+    z = np.asarray(z, dtype=np.float64)
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        base = 1.0 + safe_xi * e
-        tail = np.where(small, np.exp(-e), np.where(base > 0, np.exp(-np.log(base) / safe_xi), 0.0))
-        body = zeta * ndtr(-z) / NORMAL_ZETA
-    if light.any():
-        local = np.maximum(sigma + xi * (z_fit - THRESHOLD), 0.1 * sigma)
-        tail = np.where(light, tail * np.exp(-(z - z_fit) / local), tail)
-    p = np.where(z > THRESHOLD, zeta * tail, np.minimum(body, 1.0))
+        p = np.minimum(zeta * ndtr(-z) / NORMAL_ZETA, 1.0)
+    far = np.flatnonzero(z > THRESHOLD)  # a few percent of the steps: the tail model there only
+    if far.shape[0]:
+        zf, xf, sf = z[far], xi[far], sigma[far]
+        light = (xf < 0) & (zf > edge[far]) if edge is not None else np.zeros(far.shape[0], bool)
+        z_fit = np.where(light, edge[far], zf) if edge is not None else zf
+        e = (z_fit - THRESHOLD) / sf
+        small = np.abs(xf) < 1e-6
+        safe_xi = np.where(small, 1.0, xf)
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            base = 1.0 + safe_xi * e
+            tail = np.where(small, np.exp(-e),
+                            np.where(base > 0, np.exp(-np.log(base) / safe_xi), 0.0))
+            local = np.maximum(sf + xf * (z_fit - THRESHOLD), 0.1 * sf)
+            tail = np.where(light, tail * np.exp(-(zf - z_fit) / local), tail)
+        p[far] = zeta[far] * tail
     return np.maximum(p, P_FLOOR)
 
 
@@ -130,14 +131,16 @@ class TailModel(ColumnState):
         g = np.where(m, np.maximum(1.0 / (n + ZETA_PRIOR + 1.0), 1.0 / ZETA_MEMORY), 0.0)
         zeta = self.zeta[r].astype(np.float64)
         self.zeta[r] = zeta + g * (over - zeta)
-        if over.any():
-            ne = self.n_excess[r].astype(np.float64)
-            cap = np.maximum(edge - THRESHOLD, 0.5) * np.where(in_run, 1.0, EXCESS_CAP)[:, None]
-            x = np.minimum(zs - THRESHOLD, cap)
-            ge = np.where(over, np.maximum(1.0 / (ne + EXCESS_PRIOR + 1.0), 1.0 / EXCESS_MEMORY), 0.0)
-            m1 = self.m1[r].astype(np.float64)
-            m2 = self.m2[r].astype(np.float64)
-            self.m1[r] = m1 + ge * (x - m1)
-            self.m2[r] = m2 + ge * (x * x - m2)
-            self.n_excess[r] = ne + over
+        i, side = np.nonzero(over)  # a few percent of the rows: learn the excesses there only
+        if i.shape[0]:
+            rows = row_numbers(r)[i]
+            cap = np.maximum(edge[i, side] - THRESHOLD, 0.5) * np.where(in_run[i], 1.0, EXCESS_CAP)
+            x = np.minimum(zs[i, side] - THRESHOLD, cap)
+            ne = self.n_excess[rows, side].astype(np.float64)
+            ge = np.maximum(1.0 / (ne + EXCESS_PRIOR + 1.0), 1.0 / EXCESS_MEMORY)
+            m1 = self.m1[rows, side].astype(np.float64)
+            m2 = self.m2[rows, side].astype(np.float64)
+            self.m1[rows, side] = m1 + ge * (x - m1)
+            self.m2[rows, side] = m2 + ge * (x * x - m2)
+            self.n_excess[rows, side] = ne + 1.0
         self.n[r] = np.where(mask, np.minimum(n[:, 0] + 1.0, 1e9), n[:, 0])
