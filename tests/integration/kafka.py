@@ -39,6 +39,13 @@ class Broker:
         for f in futures.values():
             f.result(10)
 
+    def daemon_topics(self, partitions: int = 1) -> tuple[str, str, str]:
+        """New input (with ``partitions``), output and dead-letter topics with unique names."""
+        topics = (unique("in"), unique("out"), unique("dlq"))
+        self.create_topics(topics[0], partitions=partitions)
+        self.create_topics(*topics[1:])
+        return topics
+
     def produce(self, topic: str, messages, key=None) -> None:
         p = Producer({"bootstrap.servers": self.bootstrap, "linger.ms": 5})
         for item in messages:

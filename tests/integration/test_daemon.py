@@ -68,9 +68,7 @@ def replay_events(points):
 
 
 def test_events_reach_the_output_topic_and_equal_replay(broker, tmp_path):
-    topics = (unique("in"), unique("out"), unique("dlq"))
-    broker.create_topics(topics[0], partitions=2)
-    broker.create_topics(*topics[1:])
+    topics = broker.daemon_topics(partitions=2)
     points = waterflow_points(sites=2)
     broker.produce(topics[0], as_messages(points))
     expected = replay_events(points)
@@ -93,8 +91,7 @@ def test_events_reach_the_output_topic_and_equal_replay(broker, tmp_path):
 
 
 def test_malformed_records_go_to_the_dead_letter_topic(broker, tmp_path):
-    topics = (unique("in"), unique("out"), unique("dlq"))
-    broker.create_topics(*topics)
+    topics = broker.daemon_topics()
     points = waterflow_points(sites=1)
     good = as_messages(points)
     bad = [(b"x", b'{"metric": "waterflow", "time": 1650000000, "value": "lots"}'),
@@ -151,8 +148,7 @@ def test_events_file_sink_and_corrupt_checkpoint(broker, tmp_path):
 
 
 def test_influx_line_protocol_input(broker, tmp_path):
-    topics = (unique("in"), unique("out"), unique("dlq"))
-    broker.create_topics(*topics)
+    topics = broker.daemon_topics()
     points = waterflow_points(sites=1)
     # Line protocol, ten lines per message; field "flow" makes the series waterflow_flow.
     lines = [f"waterflow,site={p['labels']['site']} flow={p['value']} {int(p['time'] * 1e9)}" for p in points]

@@ -14,7 +14,6 @@ import pytest
 from confluent_kafka import Producer
 
 from streamdet.events import parse_cloudevent
-from tests.integration.kafka import unique
 from tests.integration.streams import as_messages, waterflow_points
 from tests.integration.test_daemon import Running, make_daemon, replay_events, wait_for
 
@@ -26,8 +25,7 @@ def _get(metrics, name, labels=None):
 
 
 def test_label_values_that_are_objects_or_lists_are_dead_lettered(broker, tmp_path):
-    topics = (unique("in"), unique("out"), unique("dlq"))
-    broker.create_topics(*topics)
+    topics = broker.daemon_topics()
     points = waterflow_points(sites=1)
     good = as_messages(points)
     poison = [(b"x", b'{"metric": "g", "labels": {"h": {"x": 1}}, "time": 1650000000, "value": 1}'),
@@ -49,8 +47,7 @@ def test_label_values_that_are_objects_or_lists_are_dead_lettered(broker, tmp_pa
 
 
 def test_line_protocol_with_400_digit_numbers_is_dead_lettered(broker, tmp_path):
-    topics = (unique("in"), unique("out"), unique("dlq"))
-    broker.create_topics(*topics)
+    topics = broker.daemon_topics()
     digits = "9" * 400
     msgs = [(b"m", f"cpu,host=a used={digits}i 1650000000000000000".encode()),
             (b"m", f"cpu,host=a used=1 {digits}".encode()),
@@ -66,8 +63,7 @@ def test_line_protocol_with_400_digit_numbers_is_dead_lettered(broker, tmp_path)
 
 
 def test_oversized_undecodable_message_is_dead_lettered_truncated(broker, tmp_path, caplog):
-    topics = (unique("in"), unique("out"), unique("dlq"))
-    broker.create_topics(*topics)
+    topics = broker.daemon_topics()
     big = b"x" * 5_000_000
     p = Producer({"bootstrap.servers": broker.bootstrap, "message.max.bytes": 10_000_000})
     p.produce(topics[0], value=big, key=b"k1")
@@ -94,8 +90,7 @@ def test_oversized_undecodable_message_is_dead_lettered_truncated(broker, tmp_pa
 
 
 def test_event_over_the_message_size_limit_is_skipped_and_others_go_out(broker, tmp_path, caplog):
-    topics = (unique("in"), unique("out"), unique("dlq"))
-    broker.create_topics(*topics)
+    topics = broker.daemon_topics()
     long_site = "s" * 1000  # within the 1024-character label limit, but its events exceed 3000 bytes
     points = waterflow_points(sites=1)
     both = [q for p in points for q in (p, {**p, "labels": {"site": long_site}})]

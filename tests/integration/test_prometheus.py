@@ -11,7 +11,6 @@ import urllib.request
 import pytest
 
 from streamdet.local_broker import free_port, wait_port
-from tests.integration.kafka import unique
 from tests.integration.streams import as_messages, waterflow_points
 from tests.integration.test_daemon import Running, make_daemon, wait_for
 
@@ -32,8 +31,7 @@ def query(port: int, expr: str):
 @pytest.mark.skipif(PROMETHEUS is None, reason="the prometheus binary is not installed "
                     "(apt-get install --no-install-recommends prometheus; .ci/run does this)")
 def test_prometheus_scrapes_the_daemon(broker, tmp_path):
-    topics = (unique("in"), unique("out"), unique("dlq"))
-    broker.create_topics(*topics)
+    topics = broker.daemon_topics()
     points = waterflow_points(sites=1)
     broker.produce(topics[0], as_messages(points))
     daemon, _metrics = make_daemon(broker, tmp_path, topics)

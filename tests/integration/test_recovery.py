@@ -68,9 +68,7 @@ def status(port, path):
 
 
 def test_kill_9_and_restart_loses_nothing(broker, tmp_path):
-    topics = (unique("in"), unique("out"), unique("dlq"))
-    broker.create_topics(topics[0], partitions=3)
-    broker.create_topics(*topics[1:])
+    topics = broker.daemon_topics(partitions=3)
     points = waterflow_points(sites=12)
     broker.produce(topics[0], as_messages(points))
     expected = replay_events(points)
@@ -106,8 +104,7 @@ def test_kill_9_and_restart_loses_nothing(broker, tmp_path):
 
 
 def test_sigterm_exits_cleanly_within_10_s(broker, tmp_path):
-    topics = (unique("in"), unique("out"), unique("dlq"))
-    broker.create_topics(*topics)
+    topics = broker.daemon_topics()
     port = free_port()
     cfg = write_config(tmp_path / "cfg.yaml", broker, topics, tmp_path / "state", port)
     proc = start(cfg, tmp_path / "log")
@@ -122,8 +119,7 @@ def test_sigterm_exits_cleanly_within_10_s(broker, tmp_path):
 def test_frozen_broker_not_ready_then_resumes_without_loss(tmp_path):
     b = Broker().start()
     try:
-        topics = (unique("in"), unique("out"), unique("dlq"))
-        b.create_topics(*topics)
+        topics = b.daemon_topics()
         points = waterflow_points(sites=1)
         half = len(points) // 2
         b.produce(topics[0], as_messages(points[:half]))
