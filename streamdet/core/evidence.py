@@ -24,7 +24,7 @@ import numpy as np
 from scipy.special import gammaincc, gammaln
 from scipy.stats import chi2
 
-from streamdet.core.columns import ColumnSpec, ColumnState
+from streamdet.core.columns import ColumnSpec, ColumnState, row_numbers, take
 
 MAX_WINDOW = 32
 NEG_LOG_CAP = 650.0  # -ln p is stored up to this (p >= ~1e-282); float16 holds it to 3 digits
@@ -68,24 +68,29 @@ class EvidenceWindow(ColumnState):
             window: np.ndarray | int) -> np.ndarray:
         """Push one judged step per row; returns Fisher's statistic per side, shape ``(rows, 2)``.
         Rows not judged keep their state (their statistic is returned unchanged)."""
+        rows = row_numbers(r)
+        if not judged.all():
+            act = np.flatnonzero(judged)
+            self._push(rows[act], p_up[act], p_lo[act], take(window, act))
+            return 2.0 * self.sums[r]
+        self._push(rows, p_up, p_lo, window)
+        return 2.0 * self.sums[r]
+
+    def _push(self, rows: np.ndarray, p_up: np.ndarray, p_lo: np.ndarray,
+              window: np.ndarray | int) -> None:
         up_smaller = p_up <= p_lo
-        neg = -np.log(np.where(up_smaller, p_up, p_lo))
-        signed = np.where(up_smaller, 1.0, -1.0) * np.minimum(neg, NEG_LOG_CAP)
-        new = signed.astype(np.float16)
-        pos = self.pos[r].astype(np.int64)
-        idx = r if isinstance(r, np.ndarray) else np.arange(r.start, r.stop)
-        old16 = self.ring[idx, pos]
-        old = old16.astype(np.float64)
-        newf = new.astype(np.float64)
-        sums = self.sums[r]
-        add = np.stack([np.maximum(newf, 0.0), np.maximum(-newf, 0.0)], axis=1)
-        sub = np.stack([np.maximum(old, 0.0), np.maximum(-old, 0.0)], axis=1)
-        j = judged[:, None]
-        sums = np.where(j, np.maximum(sums + add - sub, 0.0), sums)
-        self.sums[r] = sums
-        self.ring[idx, pos] = np.where(judged, new, old16)
-        self.pos[r] = np.where(judged, (pos + 1) % window, pos).astype(np.uint8)
-        return 2.0 * sums
+        neg = np.minimum(-np.log(np.where(up_smaller, p_up, p_lo)), NEG_LOG_CAP)
+        new16 = np.where(up_smaller, neg, -neg).astype(np.float16)
+        pos = self.pos[rows].astype(np.int64)
+        new = new16.astype(np.float64)
+        old = self.ring[rows, pos].astype(np.float64)
+        # each side's sum gains the new step's -ln p and loses the evicted step's
+        sums = self.sums[rows]
+        sums[:, 0] += np.maximum(new, 0.0) - np.maximum(old, 0.0)
+        sums[:, 1] += np.maximum(-new, 0.0) - np.maximum(-old, 0.0)
+        self.sums[rows] = np.maximum(sums, 0.0)
+        self.ring[rows, pos] = new16
+        self.pos[rows] = ((pos + 1) % window).astype(np.uint8)
 
     def clear(self, rows: np.ndarray) -> None:
         """Forget the evidence of ``rows`` (after a breach opens or closes)."""
