@@ -51,6 +51,11 @@ Shapes:
 * ``brake_pressure``: hydraulic line pressure at the repair shop; a slow leak (drift) twice.
 * ``kiosk_temperature``: flat noise, no incident (pure false-alarm measurement).
 * ``repair_tickets``: Poisson low counts (mean 1-3 per step). Incidents: surges.
+* ``hub_cpu``: CPU use of the fleet hub; autocorrelated noise (first-order autoregression,
+  lag-one correlation 0.7-0.9, as utilisation and latency series usually have) around a daily
+  cycle. Incidents: dip, spike, burst.
+* ``kiosk_humidity``: autocorrelated noise (lag-one correlation 0.8-0.95), no incident (the
+  false alarms a slow wobble raises).
 """
 
 from __future__ import annotations
@@ -240,6 +245,30 @@ def repair_tickets(rng, t):
     return rng.poisson(rate).astype(float), inc.windows
 
 
+def ar1(rng, n: int, rho: float, sd: float) -> np.ndarray:
+    """First-order autoregressive noise with lag-one correlation ``rho`` and marginal ``sd``."""
+    e = rng.normal(0, sd * np.sqrt(1 - rho * rho), n)
+    out = np.empty(n)
+    out[0] = rng.normal(0, sd)
+    for i in range(1, n):
+        out[i] = rho * out[i - 1] + e[i]
+    return out
+
+
+def hub_cpu(rng, t):
+    inc = Incidents(rng, t.shape[0])
+    sd = 3.0
+    y = 40 + 15 * daily(t, 14) + ar1(rng, t.shape[0], rng.uniform(0.7, 0.9), sd)
+    add_dip(y, t, inc)
+    add_spike(y, t, inc, sd * rng.uniform(8, 12))
+    add_burst(y, t, inc, sd)
+    return y, inc.windows
+
+
+def kiosk_humidity(rng, t):
+    return 45 + ar1(rng, t.shape[0], rng.uniform(0.8, 0.95), 2.0), []
+
+
 SHAPES: dict[str, tuple[Callable, int]] = {  # name -> (generator, days)
     "rentals": (rentals, 28),
     "dock_faults": (dock_faults, 28),
@@ -250,6 +279,8 @@ SHAPES: dict[str, tuple[Callable, int]] = {  # name -> (generator, days)
     "brake_pressure": (brake_pressure, 28),
     "kiosk_temperature": (kiosk_temperature, 28),
     "repair_tickets": (repair_tickets, 28),
+    "hub_cpu": (hub_cpu, 28),
+    "kiosk_humidity": (kiosk_humidity, 28),
 }
 
 

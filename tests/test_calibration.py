@@ -213,3 +213,47 @@ def test_busy_hour_noise_is_learnt_from_the_first_days():
     _, events = run({"rules": [{"name": "r", "step": "5m"}]}, "m", t, y)
     late = [e for e in events if e.type == OPENED and e.step_start >= t0 + 7 * 86400]
     assert len(late) <= 1, [e.one_line() for e in late]
+
+
+def test_brown_moments_match_simulated_autocorrelated_scores():
+    # Brown (1975) with the covariance approximation of Kost & McDermott (2002): for normal scores
+    # following a first-order autoregression (simulated with numpy, one-sided p-values from
+    # scipy.stats.norm.sf), the mean and variance of Fisher's statistic over k steps must match
+    # E[X] = 2k and Var[X] = 2 c E[X] within sampling error (5 %), and rho = 0 is Fisher's method.
+    from streamdet.core.evidence import brown_scale, combined_surprise
+
+    rng = np.random.default_rng(13)
+    k, n = 5, 200_000
+    for rho in (0.0, 0.5, 0.8):
+        z = np.empty((n, k))
+        z[:, 0] = rng.standard_normal(n)
+        for j in range(1, k):
+            z[:, j] = rho * z[:, j - 1] + np.sqrt(1 - rho * rho) * rng.standard_normal(n)
+        x = -2 * np.log(stats.norm.sf(z)).sum(axis=1)
+        c, f = brown_scale(np.array([rho]), np.array([k]))
+        assert abs(x.mean() / (2 * k) - 1) < 0.02
+        assert abs(x.var() / (2 * c[0] * 2 * k) - 1) < 0.05, (rho, x.var(), 4 * c[0] * k)
+        assert f[0] == pytest.approx(2 * k / c[0])
+    ps = [0.01, 0.2, 0.5]
+    stat = np.array([-2 * np.log(ps).sum()])
+    ref = stats.combine_pvalues(ps, method="fisher").pvalue
+    assert combined_surprise(stat, np.array([3]), np.array([0.0]))[0] == pytest.approx(-np.log10(ref))
+
+
+def test_autocorrelated_noise_does_not_page():
+    # A slow wobble is not an incident. Noise following a first-order autoregression with lag-one
+    # correlation 0.85 (numpy), 5-minute steps for three weeks, defaults: at most 2 false breaches
+    # across ten series in weeks two and three (0.1 per series-week). Common practice, no source:
+    # a page a week per series gets the tool switched off.
+    rng = np.random.default_rng(14)
+    n_series, n_steps, rho = 10, 3 * 2016, 0.85
+    e = rng.standard_normal((n_steps, n_series)) * np.sqrt(1 - rho * rho)
+    y = np.empty((n_steps, n_series))
+    y[0] = rng.standard_normal(n_series)
+    for i in range(1, n_steps):
+        y[i] = rho * y[i - 1] + e[i]
+    t = np.repeat(np.arange(n_steps) * 300.0 + T0, n_series)
+    keys = [f"w{i}" for i in range(n_series)] * n_steps
+    _, events = run({"rules": [{"name": "w", "step": "5m"}]}, keys, t, 50 + y.ravel(), chunk=200_000)
+    late = [e for e in events if e.type == OPENED and e.step_start >= T0 + 7 * 86400]
+    assert len(late) <= 2, [e.one_line() for e in late]

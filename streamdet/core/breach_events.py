@@ -12,7 +12,6 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
-from streamdet.core.evidence import fisher_p, fisher_surprise
 from streamdet.core.judge import Assessment
 from streamdet.events import CLOSED, OPENED, BreachEvent, event_id
 
@@ -29,7 +28,7 @@ class Wave:
     step: np.ndarray | float
     observed: np.ndarray
     a: Assessment
-    stat: np.ndarray  # (rows, 2) Fisher's statistic per side
+    surprise: np.ndarray  # (rows, 2) combined surprise per side
     window: np.ndarray
 
     def step_at(self, i: int) -> float:
@@ -42,12 +41,11 @@ class Announcer:
     def __init__(self, engine: Engine) -> None:
         self.engine = engine
 
-    def _evidence(self, row: int, statistic: float, k: int) -> tuple[float, float]:
-        """Combined p-value (Bonferroni over the rule's watched sides) and its surprise."""
+    def _evidence(self, row: int, surprise: float) -> tuple[float, float]:
+        """Combined p-value and surprise, Bonferroni-adjusted over the rule's watched sides."""
         sides = int(self.engine.rule_sides[int(self.engine.table.rule[row])])
-        p = float(fisher_p(np.array([statistic]), k)[0])
-        surprise = float(fisher_surprise(np.array([statistic]), k)[0]) - math.log10(sides)
-        return min(1.0, p * sides), max(0.0, surprise)
+        surprise = max(0.0, surprise - math.log10(sides))
+        return 10.0 ** -surprise, surprise
 
     def _base(self, row: int, i: int, w: Wave) -> dict:
         eng = self.engine
@@ -65,8 +63,7 @@ class Announcer:
     def opened(self, row: int, i: int, w: Wave) -> BreachEvent:
         b = self.engine.breaches
         side = int(b.status[row])
-        stat = float(w.stat[i, 0 if side > 0 else 1])
-        p, surprise = self._evidence(row, stat, int(w.window[i]))
+        p, surprise = self._evidence(row, float(w.surprise[i, 0 if side > 0 else 1]))
         return BreachEvent(type=OPENED, direction="above" if side > 0 else "below",
                            started=float(b.since[row]), p_value=p, surprise=surprise,
                            **self._base(row, i, w))
@@ -95,7 +92,7 @@ class Announcer:
         b = eng.breaches
         rule = eng.config.rules[int(eng.table.rule[row])]
         worst = float(b.worst[row])
-        p, surprise = self._evidence(row, float(b.peak[row]), rule.confirm_steps)
+        p, surprise = self._evidence(row, float(b.peak[row]))
         return BreachEvent(
             type=CLOSED, direction="above" if worst >= 0 else "below",
             started=float(b.since[row]), duration=float(b.last_out[row] - b.since[row]),

@@ -1,13 +1,14 @@
 """The opened/closed state machine every judge shares: open on evidence, clear, re-arm.
 
-A breach opens on one side when that side's combined evidence (Fisher's statistic over the last
-``confirm.steps`` steps, see :mod:`streamdet.core.evidence`) reaches its critical value at a
+A breach opens on one side when that side's combined evidence (the surprise, ``-log10`` of the
+combined p-value of the last ``confirm.steps`` steps, see :mod:`streamdet.core.evidence`)
+reaches what the rule needs at a
 step that is itself unusual on that side. It closes after ``clear.steps`` judged steps in a
 row that were *ordinary* on that side (not even mildly unusual: inside a band one standard
 deviation narrower than the breach band, which gives hysteresis). After a close the series is
 *re-arming* for ``rearm``: it re-opens during that time only on evidence clearly stronger
-than the closed breach's peak (``REARM_MARGIN`` on the statistic, a hundred times rarer), so
-a noisy series does not flap.
+than the closed breach's peak (``REARM_MARGIN``: a hundred times rarer), so a noisy series does
+not flap.
 """
 
 from __future__ import annotations
@@ -19,7 +20,7 @@ import numpy as np
 
 from streamdet.core.columns import ColumnSpec, ColumnState, row_numbers, take
 
-REARM_MARGIN = 2.0 * np.log(100.0)  # Fisher's X grows by 2 ln(100) for evidence 100x rarer
+REARM_MARGIN = 2.0  # surprise (-log10 p) over the closed breach's peak: a hundred times rarer
 
 
 @dataclass(slots=True)
@@ -41,18 +42,18 @@ class BreachState(ColumnState):
         "decided": ("f8", (), 0.0),  # start of the step that opened it
         "last_out": ("f8", (), 0.0),  # end of the latest unusual step of the breach
         "worst": ("f4", (), 0.0),  # score furthest from 0 while open
-        "peak": ("f4", (), 0.0),  # largest evidence statistic while open (kept after the close)
+        "peak": ("f4", (), 0.0),  # largest surprise while open (kept after the close)
         "rearm_until": ("f8", (), -np.inf),  # after a close: re-opens need stronger evidence till then
         "relearned": ("i1", (), 0),  # the open breach saw a re-level
     }
 
-    def step(self, r: slice | np.ndarray, judged: np.ndarray, stat: np.ndarray, crit: np.ndarray,
+    def step(self, r: slice | np.ndarray, judged: np.ndarray, surprise: np.ndarray, need: np.ndarray,
              unusual: np.ndarray, score: np.ndarray, start: np.ndarray, step: np.ndarray | float,
              clear_steps: np.ndarray | int, rearm: np.ndarray | float) -> Transitions:
         """One judged step per row.
 
-        ``stat`` and ``crit`` are ``(rows, 2)`` (side 0 above, 1 below; ``crit`` is inf for a
-        side the rule does not watch); ``unusual`` is ``(rows, 2)``: the step is not ordinary on
+        ``surprise`` and ``need`` are ``(rows, 2)`` (side 0 above, 1 below; ``need`` is inf for
+        a side the rule does not watch); ``unusual`` is ``(rows, 2)``: the step is not ordinary on
         that side. Only rows with an open breach or enough evidence to open one can change, so
         the work is done on those alone.
         """
@@ -64,22 +65,22 @@ class BreachState(ColumnState):
         was_open = side != 0
         # a breach opens at an unusual step: diffuse evidence (a string of barely unusual steps,
         # as autocorrelated residuals give) waits until a step is unusual in its own right
-        may_open = (unusual & (stat >= crit)).any(axis=1)
+        may_open = (unusual & (surprise >= need)).any(axis=1)
         act = np.flatnonzero(judged & (was_open | may_open))
         if act.shape[0]:
             rows = row_numbers(r)[act]
-            o, c, a, s = self._step(rows, stat[act], crit[act], unusual[act], score[act], start[act],
+            o, c, a, s = self._step(rows, surprise[act], need[act], unusual[act], score[act], start[act],
                                     take(step, act), take(clear_steps, act), take(rearm, act))
             opened[act], closed[act], after_relearn[act], side[act] = o, c, a, s
         return Transitions(opened, closed, side, after_relearn)
 
-    def _step(self, rows, stat, crit, unusual, score, start, step, clear_steps, rearm):
+    def _step(self, rows, surprise, need, unusual, score, start, step, clear_steps, rearm):
         state = self.status[rows]
         was_open = state != 0
         peak = self.peak[rows].astype(np.float64)
         rearming = start < self.rearm_until[rows]
-        need = np.where(rearming[:, None], np.maximum(crit, peak[:, None] + REARM_MARGIN), crit)
-        margin = np.where(unusual, stat - need, -np.inf)
+        need = np.where(rearming[:, None], np.maximum(need, peak[:, None] + REARM_MARGIN), need)
+        margin = np.where(unusual, surprise - need, -np.inf)
         can_open = ~was_open & (margin >= 0).any(axis=1)
         open_side = np.where(margin[:, 0] >= margin[:, 1], 1, -1)
         # the open breach's side: its unusual flag and statistic
@@ -92,10 +93,10 @@ class BreachState(ColumnState):
         stays = was_open & ~closed
         worst = self.worst[rows].astype(np.float64)
         worst = np.where(stays & cur_unusual & (np.abs(score) > np.abs(worst)), score, worst)
-        peak = np.where(stays, np.maximum(peak, stat[idx, cur]), peak)
+        peak = np.where(stays, np.maximum(peak, surprise[idx, cur]), peak)
         last_out = np.where(stays & cur_unusual, start + step, self.last_out[rows])
         worst = np.where(can_open, score, worst)
-        peak = np.where(can_open, stat[idx, np.where(open_side > 0, 0, 1)], peak)
+        peak = np.where(can_open, surprise[idx, np.where(open_side > 0, 0, 1)], peak)
         state = np.where(can_open, open_side, state)
         clear_run = np.where(can_open, 0, clear_run)
         last_out = np.where(can_open, start + step, last_out)

@@ -29,9 +29,9 @@ import numpy as np
 
 from streamdet.config import Config, Rule
 from streamdet.core import breach_events, framing
-from streamdet.core.columns import ColumnState
+from streamdet.core.columns import ColumnState, row_numbers
 from streamdet.core.confirm import BreachState
-from streamdet.core.evidence import EvidenceWindow, critical_statistic
+from streamdet.core.evidence import EvidenceWindow, combined_surprise, critical_statistic
 from streamdet.core.forecast import StepContext
 from streamdet.core.forecast.base import as_index
 from streamdet.core.judge import TemporalJudge
@@ -101,13 +101,17 @@ class Engine:
         self.rule_counter = np.array([r.kind == "counter" for r in rules], dtype=bool)
         self.rule_window = np.array([r.confirm_steps for r in rules], np.int64)
         self.rule_clear = np.array([r.clear_steps for r in rules], np.int64)
-        # Fisher's statistic that opens a breach, per rule and side (inf: side not watched);
-        # the open rarity is split evenly over the watched sides (Bonferroni).
+        # The surprise that opens a breach, per rule and side (inf: side not watched); the open
+        # rarity is split evenly over the watched sides (Bonferroni). Fisher's statistic for
+        # independent steps at that rarity is a cheap necessary condition (dependence only
+        # makes evidence weaker), so the exact combination is computed for few rows.
         self.rule_sides = np.array([2 if r.direction == "both" else 1 for r in rules], np.int64)
-        self.rule_crit = np.array([[critical_statistic(r.open_rarity / s, r.confirm_steps)
-                                    if r.direction in (d, "both") else np.inf
-                                    for d in ("above", "below")]
-                                   for r, s in zip(rules, self.rule_sides.tolist(), strict=True)])
+        watched = np.array([[r.direction in (d, "both") for d in ("above", "below")] for r in rules])
+        alpha = np.array([r.open_rarity for r in rules]) / self.rule_sides
+        self.rule_need = np.where(watched, -np.log10(alpha)[:, None], np.inf)
+        self.rule_crit = np.where(watched, np.array([[critical_statistic(a, r.confirm_steps)]
+                                                     for a, r in zip(alpha, rules, strict=True)]),
+                                  np.inf)
         self.rule_unusual = np.array([r.unusual_rarity for r in rules])
         self.any_auto = any(r.step is None for r in rules)
         self.any_lateness = any(r.lateness > 0 for r in rules)
@@ -358,8 +362,9 @@ class Engine:
         stat = self.evidence.add(sel, judged, a.p_up, a.p_lo, window)
         threshold = self.rule_unusual[rule]
         unusual = np.stack([a.p_up < threshold, a.p_lo < threshold], axis=1)
-        trans = self.breaches.step(sel, judged, stat, self.rule_crit[rule], unusual, a.score, start,
-                                   step, self.rule_clear[rule], tab.rearm[sel])
+        surprise = self._surprise(sel, judged, stat, rule, unusual, window)
+        trans = self.breaches.step(sel, judged, surprise, self.rule_need[rule], unusual, a.score,
+                                   start, step, self.rule_clear[rule], tab.rearm[sel])
         side = np.where(y > a.upper, 1, np.where(y < a.lower, -1, 0)) * judged
         side = np.where(back, 0, side)
         in_run = self.runs.run[sel] != 0
@@ -373,7 +378,7 @@ class Engine:
         events: list[BreachEvent] = []
         changed = trans.opened | trans.closed
         if changed.any():
-            wave = breach_events.Wave(rows, start, step, y, a, stat, window)
+            wave = breach_events.Wave(rows, start, step, y, a, surprise, window)
             for i in np.flatnonzero(changed).tolist():
                 row = int(rows[i])
                 if trans.opened[i]:
@@ -387,6 +392,7 @@ class Engine:
             self.counters["events_opened"] += int(trans.opened.sum())
             self.counters["events_closed"] += int(trans.closed.sum())
         self.judge.learn(ctx, y, a, judged, trans.side != 0, in_run)
+        self.evidence.learn_dependence(sel, a.score, a.any_ready & (trans.side == 0) & (a.scale > 0))
         if rl.drifting.any():
             self.counters["drifts_kept_open"] += int(rl.drifting.sum())
         if back.any():
@@ -401,6 +407,18 @@ class Engine:
             b.relearned[rr] = np.where(b.status[rr] != 0, 1, b.relearned[rr])
             self.counters["relearns"] += rr.shape[0]
         return events
+
+    def _surprise(self, sel, judged, stat, rule, unusual, window) -> np.ndarray:
+        """Combined surprise per side (Brown's method for the series' learnt correlation), for
+        rows with an open breach or past the independent-steps threshold; 0 elsewhere."""
+        out = np.zeros(stat.shape)
+        cand = judged & ((self.breaches.status[sel] != 0)
+                         | (unusual & (stat >= self.rule_crit[rule])).any(axis=1))
+        if cand.any():
+            i = np.flatnonzero(cand)
+            rows = row_numbers(sel)[i]
+            out[i] = combined_surprise(stat[i], window[i, None], self.evidence.rho(rows)[:, None])
+        return out
 
     def _set_since(self, row: int, i: int, wave: breach_events.Wave, threshold: float) -> None:
         """Start of the breach: the oldest step in the evidence window that was unusual on the
