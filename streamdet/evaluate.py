@@ -29,7 +29,7 @@ import orjson
 import yaml
 
 from streamdet.codecs.common import RecordError, parse_time
-from streamdet.config import Config, ConfigError, parse_config
+from streamdet.config import Config, ConfigError, parse_config, read_config_file
 from streamdet.core.engine import Engine
 from streamdet.core.points import DecodeError, PointBatch, series_key
 from streamdet.events import CLOSED, OPENED
@@ -654,18 +654,9 @@ def read_config_raw(path: str | None) -> dict[str, Any]:
     """The YAML document of a config file (validated in full), or {} for built-in defaults."""
     if not path:
         return {}
-    try:
-        text = Path(path).read_text(encoding="utf-8")
-    except OSError as exc:
-        raise ConfigError([f"{path}: cannot read ({exc.strerror})"]) from None
-    try:
-        raw = yaml.safe_load(text)
-    except yaml.YAMLError as exc:
-        raise ConfigError([f"{path}: not valid YAML ({exc})"]) from None
-    raw = raw if raw is not None else {}
-    parse_config(raw)  # raises ConfigError naming every bad key
-    if not isinstance(raw, dict):  # pragma: no cover - parse_config refuses non-mappings
-        raise ConfigError([f"{path}: expected a mapping"])
+    raw = read_config_file(path)
+    parse_config(raw)  # raises ConfigError naming every bad key (and refuses non-mappings)
+    assert isinstance(raw, dict)
     return raw
 
 
