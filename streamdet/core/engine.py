@@ -392,7 +392,6 @@ class Engine:
             self.counters["events_opened"] += int(trans.opened.sum())
             self.counters["events_closed"] += int(trans.closed.sum())
         self.judge.learn(ctx, y, a, judged, trans.side != 0, in_run)
-        self.evidence.learn_dependence(sel, a.score, a.any_ready & (trans.side == 0) & (a.scale > 0))
         if rl.drifting.any():
             self.counters["drifts_kept_open"] += int(rl.drifting.sum())
         if back.any():
@@ -417,7 +416,7 @@ class Engine:
         if cand.any():
             i = np.flatnonzero(cand)
             rows = row_numbers(sel)[i]
-            out[i] = combined_surprise(stat[i], window[i, None], self.evidence.rho(rows)[:, None])
+            out[i] = combined_surprise(stat[i], window[i, None], self.judge.tails.rho(rows)[:, None])
         return out
 
     def _set_since(self, row: int, i: int, wave: breach_events.Wave, threshold: float) -> None:

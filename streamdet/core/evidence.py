@@ -14,7 +14,8 @@ of freedom, where ``c = Var(X) / (2 E[X])`` and ``f = 2 E[X]^2 / Var(X)``. The c
 ``-2 ln p`` for two normal scores with correlation ``rho`` is taken from Kost & McDermott (2002),
 ``3.263 rho + 0.710 rho^2 + 0.027 rho^3`` (coefficients from memory of that paper), with
 ``rho^d`` between steps ``d`` apart (a first-order autoregression whose lag-one correlation each
-series learns from its own normalised residuals). With ``rho = 0`` it is Fisher's method.
+series learns from its own normalised residuals: ``TailModel.rho`` in
+:mod:`streamdet.core.tails`). With ``rho = 0`` it is Fisher's method.
 
 >>> import numpy as np
 >>> from scipy.stats import combine_pvalues
@@ -36,10 +37,7 @@ from scipy.stats import chi2
 from streamdet.core.columns import ColumnSpec, ColumnState, row_numbers, take
 
 MAX_WINDOW = 32
-RHO_MAX = 0.9  # learnt lag-one correlation is clipped to [0, RHO_MAX]
-DEPENDENCE_PRIOR = 100.0  # pseudo-steps at rho = 0 behind the learnt correlation
-DEPENDENCE_MEMORY = 2000.0  # steps
-Z_CLIP = 4.0  # normalised residuals are clipped here before they teach the correlation
+RHO_MAX = 0.9  # the lag-one correlation used is clipped to [0, RHO_MAX]
 NEG_LOG_CAP = 650.0  # -ln p is stored up to this (p >= ~1e-282); float16 holds it to 3 digits
 
 
@@ -98,29 +96,7 @@ class EvidenceWindow(ColumnState):
         "ring": ("f2", (MAX_WINDOW,), 0.0),
         "pos": ("u1", (), 0),
         "sums": ("f8", (2,), 0.0),
-        "z_prev": ("f4", (), 0.0),  # the previous normalised residual (clipped)
-        "c01": ("f4", (), 0.0),  # running mean of z_t * z_t-1
-        "c00": ("f4", (), 1.0),  # running mean of z_t^2
-        "n_dep": ("f4", (), 0.0),
     }
-
-    def rho(self, r: slice | np.ndarray) -> np.ndarray:
-        """Learnt lag-one correlation of the normalised residuals, clipped to ``[0, RHO_MAX]``."""
-        c00 = self.c00[r].astype(np.float64)
-        return np.clip(self.c01[r] / np.maximum(c00, 1e-6), 0.0, RHO_MAX)
-
-    def learn_dependence(self, r: slice | np.ndarray, z: np.ndarray, mask: np.ndarray) -> None:
-        """Learn the lag-one correlation from ``z`` where ``mask`` holds (steps of an open
-        breach do not teach it); every row remembers its newest residual."""
-        zc = np.clip(z, -Z_CLIP, Z_CLIP)
-        n = self.n_dep[r].astype(np.float64)
-        g = np.where(mask, np.maximum(1.0 / (n + DEPENDENCE_PRIOR + 1.0), 1.0 / DEPENDENCE_MEMORY), 0.0)
-        c01 = self.c01[r].astype(np.float64)
-        c00 = self.c00[r].astype(np.float64)
-        self.c01[r] = c01 + g * (zc * self.z_prev[r] - c01)
-        self.c00[r] = c00 + g * (zc * zc - c00)
-        self.n_dep[r] = n + mask
-        self.z_prev[r] = zc
 
     def add(self, r: slice | np.ndarray, judged: np.ndarray, p_up: np.ndarray, p_lo: np.ndarray,
             window: np.ndarray | int) -> np.ndarray:

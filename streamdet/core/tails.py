@@ -36,6 +36,9 @@ THRESHOLD = 1.5  # u: excesses are counted beyond 1.5 residual scales (93rd perc
 NORMAL_ZETA = 0.0668072  # P(Z > 1.5)
 NORMAL_M1 = 0.43866  # E[Z - u | Z > u]
 NORMAL_M2 = 0.34197  # E[(Z - u)^2 | Z > u]
+Z_CLIP = 4.0  # residuals are clipped here before they teach the autocorrelation
+DEPENDENCE_PRIOR = 100.0  # pseudo-steps at zero autocorrelation
+DEPENDENCE_MEMORY = 2000.0  # steps
 ZETA_PRIOR = 300.0  # pseudo-steps behind the prior exceedance rate
 EXCESS_PRIOR = 50.0  # pseudo-exceedances behind the prior excess moments
 ZETA_MEMORY = 50_000.0  # steps: effective memory of the exceedance rate once learnt
@@ -109,7 +112,15 @@ class TailModel(ColumnState):
         "m2": ("f4", (2,), NORMAL_M2),
         "n_excess": ("f4", (2,), 0.0),
         "n": ("f4", (), 0.0),
+        # lag-one autocorrelation of the normalised residuals (for combining evidence)
+        "z_prev": ("f4", (), 0.0),  # the previous residual, clipped
+        "c01": ("f4", (), 0.0),  # running mean of z_t * z_t-1
+        "c00": ("f4", (), 1.0),  # running mean of z_t^2
     }
+
+    def rho(self, r: slice | np.ndarray) -> np.ndarray:
+        """Learnt lag-one correlation of the normalised residuals (may be negative)."""
+        return self.c01[r] / np.maximum(self.c00[r].astype(np.float64), 1e-6)
 
     def params(self, r: slice | np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """``zeta, xi, sigma`` shaped ``(rows, 2)``."""
@@ -123,7 +134,7 @@ class TailModel(ColumnState):
         edges in scale units (upper, lower), used to cap what one excess can teach: up to
         ``EXCESS_CAP`` times the edge's excess, or up to the edge itself for steps of a run
         outside the band (an incident in the making is not tail behaviour). Only rows where
-        ``mask`` holds learn."""
+        ``mask`` holds learn; every row remembers its newest residual for the autocorrelation."""
         zs = np.stack([z, -z], axis=1)
         n = self.n[r].astype(np.float64)[:, None]
         m = mask[:, None]
@@ -131,6 +142,14 @@ class TailModel(ColumnState):
         g = np.where(m, np.maximum(1.0 / (n + ZETA_PRIOR + 1.0), 1.0 / ZETA_MEMORY), 0.0)
         zeta = self.zeta[r].astype(np.float64)
         self.zeta[r] = zeta + g * (over - zeta)
+        zc = np.clip(z, -Z_CLIP, Z_CLIP)
+        gd = np.where(mask, np.maximum(1.0 / (n[:, 0] + DEPENDENCE_PRIOR + 1.0), 1.0 / DEPENDENCE_MEMORY),
+                      0.0)
+        c01 = self.c01[r].astype(np.float64)
+        c00 = self.c00[r].astype(np.float64)
+        self.c01[r] = c01 + gd * (zc * self.z_prev[r] - c01)
+        self.c00[r] = c00 + gd * (zc * zc - c00)
+        self.z_prev[r] = zc
         i, side = np.nonzero(over)  # a few percent of the rows: learn the excesses there only
         if i.shape[0]:
             rows = row_numbers(r)[i]
