@@ -108,8 +108,9 @@ class TemporalJudge:
         score = (y - centre) / eff
         p_up = tail_prob(score, zeta[:, 0], xi[:, 0], sigma[:, 0], z_edges[:, 0])
         p_lo = tail_prob(-score, zeta[:, 1], xi[:, 1], sigma[:, 1], z_edges[:, 1])
-        # Nothing below zero exists for such a series, so the lower side carries no evidence.
-        p_lo = np.where(floor_in_band, 1.0, p_lo)
+        # Nothing below zero exists for such a series: a value at zero, when zero is inside its
+        # band, is usual for it and carries no evidence (values above zero are judged as usual).
+        p_lo = np.where(floor_in_band & (y <= 0.0), 1.0, p_lo)
         return Assessment(preds, ready, weights, centre, any_ready, scale, lower, centre + up_half,
                           z_edges, p_up, p_lo, score, np.where(found, season, 0.0))
 
