@@ -365,8 +365,7 @@ class Engine:
         surprise = self._surprise(sel, judged, stat, rule, unusual, window)
         trans = self.breaches.step(sel, judged, surprise, self.rule_need[rule], unusual, a.score,
                                    start, step, self.rule_clear[rule], tab.rearm[sel])
-        side = np.where(y > a.upper, 1, np.where(y < a.lower, -1, 0)) * judged
-        side = np.where(back, 0, side)
+        side = np.where(y > a.upper, 1, np.where(y < a.lower, -1, 0)) * (judged & ~back)
         in_run = self.runs.run[sel] != 0
         rl = self.runs.step(sel, judged, side, y - a.centre, y - a.season, a.scale, tab.relearn[sel],
                             start, step)
@@ -375,23 +374,34 @@ class Engine:
             self.log.add(rows, start, y, np.where(a.any_ready, a.centre, np.nan),
                          np.where(judged, a.lower, np.nan), np.where(judged, a.upper, np.nan), judged,
                          np.where(judged, p_two, np.nan))
-        events: list[BreachEvent] = []
-        changed = trans.opened | trans.closed
-        if changed.any():
-            wave = breach_events.Wave(rows, start, step, y, a, surprise, window)
-            for i in np.flatnonzero(changed).tolist():
-                row = int(rows[i])
-                if trans.opened[i]:
-                    self._set_since(row, i, wave, float(threshold[i]))
-                    events.append(self.announce.opened(row, i, wave))
-                else:
-                    reason = ("the band re-levelled after a lasting shift"
-                              if trans.closed_after_relearn[i] else "back inside the band")
-                    events.append(self.announce.closed(row, i, wave, reason))
-            self.evidence.clear(rows[changed])
-            self.counters["events_opened"] += int(trans.opened.sum())
-            self.counters["events_closed"] += int(trans.closed.sum())
+        events = self._events(rows, start, step, y, a, surprise, window, threshold, trans)
         self.judge.learn(ctx, y, a, judged, trans.side != 0, in_run)
+        self._relevel(rows, back, rl)
+        return events
+
+    def _events(self, rows, start, step, y, a, surprise, window, threshold, trans) -> list[BreachEvent]:
+        """Events for the rows that opened or closed in this wave; their evidence starts afresh."""
+        changed = trans.opened | trans.closed
+        if not changed.any():
+            return []
+        events: list[BreachEvent] = []
+        wave = breach_events.Wave(rows, start, step, y, a, surprise, window)
+        for i in np.flatnonzero(changed).tolist():
+            row = int(rows[i])
+            if trans.opened[i]:
+                self._set_since(row, i, wave, float(threshold[i]))
+                events.append(self.announce.opened(row, i, wave))
+            else:
+                reason = ("the band re-levelled after a lasting shift"
+                          if trans.closed_after_relearn[i] else "back inside the band")
+                events.append(self.announce.closed(row, i, wave, reason))
+        self.evidence.clear(rows[changed])
+        self.counters["events_opened"] += int(trans.opened.sum())
+        self.counters["events_closed"] += int(trans.closed.sum())
+        return events
+
+    def _relevel(self, rows: np.ndarray, back: np.ndarray, rl) -> None:
+        """Move the forecasters of rows that came back to a previous level or shifted for good."""
         if rl.drifting.any():
             self.counters["drifts_kept_open"] += int(rl.drifting.sum())
         if back.any():
@@ -405,7 +415,6 @@ class Engine:
             b = self.breaches
             b.relearned[rr] = np.where(b.status[rr] != 0, 1, b.relearned[rr])
             self.counters["relearns"] += rr.shape[0]
-        return events
 
     def _surprise(self, sel, judged, stat, rule, unusual, window) -> np.ndarray:
         """Combined surprise per side (Brown's method for the series' learnt correlation), for
