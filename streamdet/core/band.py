@@ -34,6 +34,7 @@ class Band(ColumnState):
         "n": ("i4", (), 0),
         "low": ("f4", (), np.inf),
     }
+    BY_BUCKET: ClassVar[frozenset[str]] = frozenset({"ratio", "ratio24"})
 
     def __init__(self, capacity: int = 0, *, scale_floor: float | Sequence[float] = 0.5,
                  memory_weeks: float | Sequence[float] = 6.0) -> None:

@@ -19,6 +19,10 @@ class ColumnState:
     """Arrays of shape ``(capacity, *tail)`` named by ``COLUMNS``; attributes of the instance."""
 
     COLUMNS: ClassVar[ColumnSpec] = {}
+    # Columns read one bucket at a time across many rows (hour-of-week profiles, rings): stored
+    # bucket-major (Fortran order), so a wave's bucket is one contiguous run of memory instead
+    # of one cache line per row.
+    BY_BUCKET: ClassVar[frozenset[str]] = frozenset()
     prefix: str = ""
 
     def __init__(self, capacity: int = 0) -> None:
@@ -26,8 +30,11 @@ class ColumnState:
         for name, (dtype, tail, fill) in self.columns().items():
             if hasattr(type(self), name):
                 raise TypeError(f"column {name!r} of {type(self).__name__} would hide a method")
-            setattr(self, name, np.full((0, *tail), fill, dtype=dtype))
+            setattr(self, name, np.full((0, *tail), fill, dtype=dtype, order=self._order(name)))
         self.grow(capacity)
+
+    def _order(self, name: str) -> str:
+        return "F" if name in self.BY_BUCKET else "C"
 
     def columns(self) -> ColumnSpec:
         """The column spec; subclasses with sizes known only at run time override this."""
@@ -39,7 +46,7 @@ class ColumnState:
             return
         for name, (dtype, tail, fill) in self.columns().items():
             old = getattr(self, name)
-            new = np.full((capacity, *tail), fill, dtype=dtype)
+            new = np.full((capacity, *tail), fill, dtype=dtype, order=self._order(name))
             new[: old.shape[0]] = old
             setattr(self, name, new)
         self.capacity = capacity

@@ -97,6 +97,7 @@ class EvidenceWindow(ColumnState):
         "pos": ("u1", (), 0),
         "sums": ("f8", (2,), 0.0),
     }
+    BY_BUCKET: ClassVar[frozenset[str]] = frozenset({"ring"})
 
     def add(self, r: slice | np.ndarray, judged: np.ndarray, p_up: np.ndarray, p_lo: np.ndarray,
             window: np.ndarray | int) -> np.ndarray:

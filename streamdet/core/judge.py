@@ -24,7 +24,7 @@ from streamdet.core.forecast import (
     StepContext,
     StreamingMedian,
 )
-from streamdet.core.tails import TailModel, tail_prob, tail_quantile
+from streamdet.core.tails import TailModel, side_probs, tail_quantile
 
 SHAPE_CLIP = 5.0  # seasonal profiles learn from values clipped at this many band half-widths
 
@@ -106,8 +106,7 @@ class TemporalJudge:
         lower = np.where(floor_in_band, 0.0, lower)
         eff = np.maximum(scale, tiny)
         score = (y - centre) / eff
-        p_up = tail_prob(score, zeta[:, 0], xi[:, 0], sigma[:, 0], z_edges[:, 0])
-        p_lo = tail_prob(-score, zeta[:, 1], xi[:, 1], sigma[:, 1], z_edges[:, 1])
+        p_up, p_lo = side_probs(score, zeta, xi, sigma, z_edges)
         # Nothing below zero exists for such a series: a value at zero, when zero is inside its
         # band, is usual for it and carries no evidence (values above zero are judged as usual).
         p_lo = np.where(floor_in_band & (y <= 0.0), 1.0, p_lo)

@@ -61,6 +61,12 @@ def gpd_from_moments(m1: np.ndarray, m2: np.ndarray) -> tuple[np.ndarray, np.nda
     return xi, sigma
 
 
+# The fit of the priors (from the moments as stored, 32-bit): every series starts here.
+NORMAL_XI, NORMAL_SIGMA = (float(v[0]) for v in gpd_from_moments(
+    np.array([NORMAL_M1], np.float32).astype(np.float64),
+    np.array([NORMAL_M2], np.float32).astype(np.float64)))
+
+
 def tail_quantile(zeta: np.ndarray, xi: np.ndarray, sigma: np.ndarray,
                   q: np.ndarray | float) -> np.ndarray:
     """``z`` with ``P(Z > z) = q``; never below the threshold (the body is not modelled)."""
@@ -82,8 +88,27 @@ def tail_prob(z: np.ndarray, zeta: np.ndarray, xi: np.ndarray, sigma: np.ndarray
     at the edge, never zero, and close to the normal tail for normal noise.
     """
     z = np.asarray(z, dtype=np.float64)
+    return _side_prob(ndtr(-z), z, zeta, xi, sigma, edge)
+
+
+def side_probs(score: np.ndarray, zeta: np.ndarray, xi: np.ndarray, sigma: np.ndarray,
+               edge: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`tail_prob` of both sides at once (parameters shaped ``(rows, 2)``: above, below):
+    ``P(Z >= score)`` from the upper tail and ``P(Z <= score)`` from the lower one. The normal
+    body needs one evaluation of the normal tail for both sides (the far side gets its
+    complement, which is at least one half there, so nothing is lost to rounding)."""
+    near = ndtr(-np.abs(score))
+    far = 1.0 - near
+    above = score >= 0
+    return (_side_prob(np.where(above, near, far), score, zeta[:, 0], xi[:, 0], sigma[:, 0], edge[:, 0]),
+            _side_prob(np.where(above, far, near), -score, zeta[:, 1], xi[:, 1], sigma[:, 1], edge[:, 1]))
+
+
+def _side_prob(normal_tail: np.ndarray, z: np.ndarray, zeta: np.ndarray, xi: np.ndarray,
+               sigma: np.ndarray, edge: np.ndarray | None) -> np.ndarray:
+    """One side's probability given the normal tail ``P(N >= z)`` of each row (see tail_prob)."""
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        p = np.minimum(zeta * ndtr(-z) / NORMAL_ZETA, 1.0)
+        p = np.minimum(zeta * normal_tail * (1.0 / NORMAL_ZETA), 1.0)
     far = np.flatnonzero(z > THRESHOLD)  # a few percent of the steps: the tail model there only
     if far.shape[0]:
         zf, xf, sf = z[far], xi[far], sigma[far]
@@ -111,6 +136,9 @@ class TailModel(ColumnState):
         "m1": ("f4", (2,), NORMAL_M1),
         "m2": ("f4", (2,), NORMAL_M2),
         "n_excess": ("f4", (2,), 0.0),
+        # the GPD fit of m1, m2 (kept beside them: it changes only when an excess is learnt)
+        "xi": ("f4", (2,), NORMAL_XI),
+        "sigma": ("f4", (2,), NORMAL_SIGMA),
         "n": ("f4", (), 0.0),
         # lag-one autocorrelation of the normalised residuals (for combining evidence)
         "z_prev": ("f4", (), 0.0),  # the previous residual, clipped
@@ -124,9 +152,17 @@ class TailModel(ColumnState):
 
     def params(self, r: slice | np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """``zeta, xi, sigma`` shaped ``(rows, 2)``."""
-        zeta = self.zeta[r].astype(np.float64)
-        xi, sigma = gpd_from_moments(self.m1[r].astype(np.float64), self.m2[r].astype(np.float64))
-        return zeta, xi, sigma
+        return (self.zeta[r].astype(np.float64), self.xi[r].astype(np.float64),
+                self.sigma[r].astype(np.float64))
+
+    def load(self, arrays: dict[str, np.ndarray], n: int) -> None:
+        """As :meth:`ColumnState.load`; the fit is derived again for snapshots taken without it."""
+        key = f"{self.prefix}.xi"
+        if key not in arrays and f"{self.prefix}.m1" in arrays:
+            xi, sigma = gpd_from_moments(arrays[f"{self.prefix}.m1"].astype(np.float64),
+                                         arrays[f"{self.prefix}.m2"].astype(np.float64))
+            arrays = {**arrays, key: xi, f"{self.prefix}.sigma": sigma}
+        super().load(arrays, n)
 
     def update(self, r: slice | np.ndarray, z: np.ndarray, edge: np.ndarray,
                in_run: np.ndarray, mask: np.ndarray) -> None:
@@ -159,7 +195,11 @@ class TailModel(ColumnState):
             ge = np.maximum(1.0 / (ne + EXCESS_PRIOR + 1.0), 1.0 / EXCESS_MEMORY)
             m1 = self.m1[rows, side].astype(np.float64)
             m2 = self.m2[rows, side].astype(np.float64)
-            self.m1[rows, side] = m1 + ge * (x - m1)
-            self.m2[rows, side] = m2 + ge * (x * x - m2)
+            m1 = m1 + ge * (x - m1)
+            m2 = m2 + ge * (x * x - m2)
+            self.m1[rows, side] = m1
+            self.m2[rows, side] = m2
             self.n_excess[rows, side] = ne + 1.0
+            self.xi[rows, side], self.sigma[rows, side] = gpd_from_moments(
+                self.m1[rows, side].astype(np.float64), self.m2[rows, side].astype(np.float64))
         self.n[r] = np.where(mask, np.minimum(n[:, 0] + 1.0, 1e9), n[:, 0])

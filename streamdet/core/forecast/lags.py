@@ -19,6 +19,7 @@ class SeasonalNaive(Forecaster):
     members = ("lag_day", "lag_week")
     prefix = "lags"
     COLUMNS: ClassVar[ColumnSpec] = {}
+    BY_BUCKET: ClassVar[frozenset[str]] = frozenset({"ring"})
 
     def __init__(self, capacity: int = 0, *, resolution: float = 7200.0) -> None:
         if resolution <= 0 or DAY % resolution:

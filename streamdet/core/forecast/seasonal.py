@@ -44,6 +44,7 @@ class HoltWinters(DampedHolt):
         gamma: float | None = None,
     ) -> None:
         self.profiles = tuple(profiles)
+        self.BY_BUCKET = frozenset(f"s{p.period}" for p in self.profiles)
         if any(p.cycle is None for p in self.profiles) and gamma is None:
             raise ValueError("a profile without a cycle needs a fixed gamma")
         super().__init__(capacity, alpha=alpha, beta=beta, phi=phi)
