@@ -287,3 +287,67 @@ def test_replay_writes_outlier_events(tmp_path):
     write_events(res.events, out)
     lines = [json.loads(x) for x in out.getvalue().splitlines()]
     assert any(d["type"] == OUTLIER_OPENED and 'host="h03"' in d["subject"] for d in lines)
+
+
+# ---------------------------------------------------------------- config and daemon bits
+
+
+def test_peers_config_defaults_and_shape_from_the_issue():
+    cfg = _cfg(method="mad", threshold=3.5, min_members=5)
+    p = cfg.rules[0].peers
+    assert (p.group_by, p.method, p.threshold, p.min_members, p.total) == (("service",), "mad", 3.5, 5, None)
+    assert parse_config({"rules": [{"name": "a"}]}).rules[0].peers is None
+
+
+@pytest.mark.parametrize("peers, expected", [
+    ({"group_by": "service"}, "rules[0].peers.group_by: expected a non-empty list"),
+    ({"group_by": []}, "rules[0].peers.group_by: expected a non-empty list"),
+    ({"group_by": ["a", 3]}, "rules[0].peers.group_by: expected a non-empty list"),
+    ({"group_by": ["a", "a"]}, "rules[0].peers.group_by: a label is listed twice"),
+    ({"group_by": ["a"], "method": "knn"}, "rules[0].peers.method: expected one of mad, dbscan"),
+    ({"group_by": ["a"], "threshold": 0}, "rules[0].peers.threshold: must be > 0"),
+    ({"group_by": ["a"], "threshold": "high"}, "rules[0].peers.threshold: expected a number"),
+    ({"group_by": ["a"], "min_members": 2}, "rules[0].peers.min_members: must be >= 3"),
+    ({"group_by": ["a"], "min_members": 5.5}, "rules[0].peers.min_members: expected a whole number"),
+    ({"group_by": ["a"], "window": 5}, "rules[0].peers.window: only used with method: dbscan"),
+    ({"group_by": ["a"], "method": "dbscan", "threshold": 3}, "rules[0].peers.threshold: only used with method: mad"),
+    ({"group_by": ["a"], "method": "dbscan", "window": 10_000}, "rules[0].peers.window: must be <= 288"),
+    ({"group_by": ["a"], "method": "dbscan", "min_samples": 1}, "rules[0].peers.min_samples: must be >= 2"),
+    ({"group_by": ["a"], "total": "max"}, "rules[0].peers.total: expected one of sum, mean"),
+    ({"group_by": ["a"], "groupby": ["b"]}, "rules[0].peers.groupby: unknown key"),
+    ("service", "rules[0].peers: expected a mapping"),
+])
+def test_peers_config_errors_name_the_key_path(peers, expected):
+    from streamdet.config import ConfigError
+    with pytest.raises(ConfigError) as err:
+        parse_config({"rules": [{"name": "web", "step": "5m", "peers": peers}]})
+    assert any(p.startswith(expected) for p in err.value.problems), err.value.problems
+
+
+def test_peers_need_a_fixed_step():
+    from streamdet.config import ConfigError
+    with pytest.raises(ConfigError, match=r"rules\[0\].peers: peer groups need a fixed step"):
+        parse_config({"rules": [{"name": "web", "step": "auto", "peers": {"group_by": ["a"]}}]})
+
+
+def test_daemon_metrics_and_split_groups():
+    # the daemon's peer metrics (fresh registry, as prometheus_client's own tests do) and the
+    # check for groups whose members arrive on more than one partition
+    from prometheus_client import CollectorRegistry
+
+    from streamdet.daemon.consumer import split_groups
+    from streamdet.daemon.health import Metrics
+    reg = CollectorRegistry()
+    m = Metrics(reg)
+    m.outliers_open.set(2)
+    m.peer_members_judged.inc(40)
+    assert reg.get_sample_value("streamdet_outliers_open") == 2
+    assert reg.get_sample_value("streamdet_peer_members_judged_total") == 40
+    b, _ = fleet(n=6, days=0.1)
+    one, two = Engine(_cfg()), Engine(_cfg())
+    half = np.array([any(f'host="h0{i}"' in k for i in range(3)) for k in b.keys])
+    one.ingest(b.take(np.flatnonzero(half)))
+    two.ingest(b.take(np.flatnonzero(~half)))
+    assert split_groups([one, two]) == 1
+    assert split_groups([one, Engine(_cfg())]) == 0
+    assert split_groups([Engine(parse_config({"rules": [{"name": "a"}]}))]) == 0
