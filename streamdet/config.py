@@ -122,6 +122,25 @@ class ForecasterParams:
     quantile: QuantileParams = field(default_factory=QuantileParams)
 
 
+PEER_METHODS = ("mad", "dbscan")
+PEER_TOTALS = ("sum", "mean")
+MAX_PEER_WINDOW = 288
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class PeerParams:
+    """``peers``: series of the rule sharing the ``group_by`` label values form a group."""
+
+    group_by: tuple[str, ...]
+    method: str = "mad"  # mad: modified z-score per step; dbscan: shape of the last `window` steps
+    threshold: float = 3.5  # mad: a member step is outside when |modified z| exceeds this
+    min_members: int = 5  # members with data in a step needed to judge the group
+    window: int = 12  # dbscan: steps per member vector
+    every: int = 1  # dbscan: cluster every this many steps
+    min_samples: int = 4  # dbscan: neighbourhood size (the point included) of a core point
+    total: str | None = None  # sum | mean: the group's per-step total as a derived series
+
+
 @dataclass(frozen=True, slots=True, kw_only=True)
 class Rule:
     """Settings for the series a rule selects. Defaults are the README's."""
@@ -144,6 +163,7 @@ class Rule:
     warmup: Span = field(default_factory=lambda: Span(seconds=86400.0))
     forecasters: ForecasterParams = field(default_factory=ForecasterParams)
     blend: BlendParams = field(default_factory=BlendParams)
+    peers: PeerParams | None = None
 
     @property
     def edge_rarity(self) -> float:
@@ -401,6 +421,44 @@ def _parse_forecasters(s: _Section) -> ForecasterParams:
     return ForecasterParams(holt=holt, seasonal=seasonal, lags=lags, quantile=quantile)
 
 
+def _parse_peers(s: _Section, step: float | None) -> PeerParams | None:
+    """The ``peers`` mapping of a rule (None when absent)."""
+    raw_group = s.get("group_by", None)
+    group: tuple[str, ...] = ()
+    if (not isinstance(raw_group, list) or not raw_group
+            or not all(isinstance(g, str) and g for g in raw_group)):
+        s.bad("group_by", f"expected a non-empty list of label names, got {raw_group!r}")
+    elif len(set(raw_group)) != len(raw_group):
+        s.bad("group_by", f"a label is listed twice: {raw_group!r}")
+    else:
+        group = tuple(raw_group)
+    d = PeerParams(group_by=group)
+    method = s.choice("method", d.method, PEER_METHODS)
+    only = {"mad": ("threshold",), "dbscan": ("window", "every", "min_samples")}
+    for other, keys in only.items():
+        for key in keys:
+            if other != method and key in s.raw:
+                s.bad(key, f"only used with method: {other} (this group uses method: {method})")
+    total = s.get("total", None)
+    if total is not None and total not in PEER_TOTALS:
+        s.bad("total", f"expected one of {', '.join(PEER_TOTALS)}, got {total!r}")
+        total = None
+    if step is None:
+        s.problems.append(f"{s.path}: peer groups need a fixed step (members are judged step by "
+                          "step together); set the rule's step instead of auto")
+    params = PeerParams(
+        group_by=group, method=method,
+        threshold=s.number("threshold", d.threshold, lo=0.0, lo_open=True),
+        min_members=s.number("min_members", d.min_members, lo=3, hi=1_000_000, integer=True),
+        window=s.number("window", d.window, lo=2, hi=MAX_PEER_WINDOW, integer=True),
+        every=s.number("every", d.every, lo=1, hi=100_000, integer=True),
+        min_samples=s.number("min_samples", d.min_samples, lo=2, hi=1_000_000, integer=True),
+        total=total,
+    )
+    s.done()
+    return params
+
+
 def _parse_rule(s: _Section, index: int) -> Rule:
     d = Rule()
     name = s.text("name", f"rule{index}")
@@ -450,6 +508,7 @@ def _parse_rule(s: _Section, index: int) -> Rule:
         warmup=s.span("warmup", d.warmup),
         forecasters=_parse_forecasters(s.section("forecasters")),
         blend=blend,
+        peers=None if s.get("peers", None) is None else _parse_peers(s.section("peers"), step),
     )
     s.done()
     return rule

@@ -1,4 +1,4 @@
-"""Breach events as frozen data classes, their deterministic ids and CloudEvents 1.0 encoding.
+"""Breach and peer-outlier events as frozen data classes, deterministic ids, CloudEvents 1.0.
 
 An event's ``id`` is a UUIDv5 of what decided it (type, rule, series, step start), so the
 same input always yields the same ids and a consumer can drop duplicates after a restart.
@@ -19,6 +19,9 @@ import orjson
 OPENED = "streamdet.breach.opened"
 CLOSED = "streamdet.breach.closed"
 EVENT_TYPES = (OPENED, CLOSED)
+OUTLIER_OPENED = "streamdet.outlier.opened"
+OUTLIER_CLOSED = "streamdet.outlier.closed"
+OUTLIER_TYPES = (OUTLIER_OPENED, OUTLIER_CLOSED)
 CONTENT_TYPE = "application/cloudevents+json"
 _NAMESPACE = uuid.UUID("0b6f3f47-6c1e-5b55-9a63-2f1d8f3c2a10")
 
@@ -87,6 +90,11 @@ class BreachEvent:
         """Event time: the end of the step that decided it (data time, not wall-clock time)."""
         return self.step_end
 
+    @property
+    def partition_key(self) -> str:
+        """Kafka message key: a series' events stay in order on one partition."""
+        return self.series
+
     def data(self) -> dict[str, Any]:
         d: dict[str, Any] = {
             "metric": self.metric,
@@ -137,6 +145,109 @@ class BreachEvent:
                     f"score={self.score:+.1f} p={self.p_value:.2g}")
         return (f"{when} CLOSED {self.series} after {self.duration or 0:.0f}s "
                 f"worst={self.worst_score or 0:+.1f} ({self.reason})")
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class OutlierEvent:
+    """A member of a peer group started or stopped standing out from its group.
+
+    ``subject`` is the member's series key; the Kafka key is the group key, so one group's
+    events stay in order on one partition.
+    """
+
+    type: str
+    series: str  # the member
+    metric: str
+    labels: Mapping[str, str]
+    rule: str
+    group: str  # group key: rule and group_by label values
+    group_labels: Mapping[str, str]
+    method: str  # "mad" or "dbscan"
+    step_start: float
+    step_end: float
+    observed: float  # the member's value at the step
+    median: float  # the group's median at the step
+    mad: float  # the group's median absolute deviation (raw)
+    score: float  # mad: modified z-score; dbscan: distance to the largest cluster in eps units
+    threshold: float  # mad: the |score| cut-off; dbscan: eps
+    members: int  # members judged at the step
+    direction: str  # "above" or "below" the group
+    started: float  # start of the first outside step
+    cluster_sizes: tuple[int, ...] = ()  # dbscan: cluster sizes, largest first (noise excluded)
+    duration: float | None = None  # closed only
+    worst_score: float | None = None  # closed only
+    opened_id: str | None = None  # closed only
+    reason: str | None = None  # closed only
+    id: str = field(default="")
+
+    def __post_init__(self) -> None:
+        if self.type not in OUTLIER_TYPES:
+            raise ValueError(f"outlier event type must be one of {OUTLIER_TYPES}, got {self.type!r}")
+        if self.direction not in ("above", "below"):
+            raise ValueError(f"direction must be 'above' or 'below', got {self.direction!r}")
+        if self.step_end <= self.step_start:
+            raise ValueError("step_end must be after step_start")
+        if self.type == OUTLIER_CLOSED and (self.duration is None or self.opened_id is None):
+            raise ValueError("a closed event needs duration and opened_id")
+        if not self.id:
+            object.__setattr__(self, "id", event_id(self.type, self.rule, self.series, self.step_start))
+
+    @property
+    def time(self) -> float:
+        return self.step_end
+
+    @property
+    def partition_key(self) -> str:
+        return self.group
+
+    def data(self) -> dict[str, Any]:
+        d: dict[str, Any] = {
+            "metric": self.metric,
+            "labels": dict(self.labels),
+            "rule": self.rule,
+            "group": self.group,
+            "group_labels": dict(self.group_labels),
+            "member": self.series,
+            "method": self.method,
+            "step_start": rfc3339(self.step_start),
+            "step_end": rfc3339(self.step_end),
+            "observed": _num(self.observed),
+            "group_median": _num(self.median),
+            "group_mad": _num(self.mad),
+            "score": _num(self.score),
+            "threshold": _num(self.threshold),
+            "members_judged": self.members,
+            "direction": self.direction,
+            "started": rfc3339(self.started),
+        }
+        if self.method == "dbscan":
+            d["cluster_sizes"] = list(self.cluster_sizes)
+        if self.type == OUTLIER_CLOSED:
+            d["duration_seconds"] = self.duration
+            d["worst_score"] = _num(self.worst_score)
+            d["opened_id"] = self.opened_id
+            d["reason"] = self.reason
+        return d
+
+    def to_cloudevent(self, source: str = "streamdet") -> dict[str, Any]:
+        return {"specversion": "1.0", "id": self.id, "source": source, "type": self.type,
+                "subject": self.series, "time": rfc3339(self.time),
+                "datacontenttype": "application/json", "data": self.data()}
+
+    def to_json(self, source: str = "streamdet") -> bytes:
+        return orjson.dumps(self.to_cloudevent(source))
+
+    def one_line(self) -> str:
+        when = rfc3339(self.time)
+        if self.type == OUTLIER_OPENED:
+            return (f"{when} OUTLIER {self.series} {self.direction} its group {self.group}: "
+                    f"observed={self.observed:.4g} median={self.median:.4g} score={self.score:+.1f} "
+                    f"members={self.members}")
+        return (f"{when} OUTLIER CLOSED {self.series} after {self.duration or 0:.0f}s "
+                f"worst={self.worst_score or 0:+.1f} ({self.reason})")
+
+
+Event = BreachEvent | OutlierEvent
 
 
 def _p(x: float) -> float | None:

@@ -28,7 +28,7 @@ from datetime import datetime
 import numpy as np
 
 from streamdet.config import Config, Rule
-from streamdet.core import breach_events, framing
+from streamdet.core import breach_events, framing, peer_groups
 from streamdet.core.columns import ColumnState, row_numbers
 from streamdet.core.confirm import BreachState
 from streamdet.core.evidence import EvidenceWindow, combined_surprise, critical_statistic
@@ -124,6 +124,10 @@ class Engine:
         self.next_eviction = -math.inf
         self.log = StepLog() if record_steps else None
         self.announce = breach_events.Announcer(self)
+        # peer groups: a second judge over the same closed steps (None: no rule has peers)
+        self.peer_groups = peer_groups.PeerJudge(self) if any(r.peers for r in rules) else None
+        if self.peer_groups is not None:
+            self.parts.extend(self.peer_groups.parts)
 
     # ------------------------------------------------------------ series lifecycle
 
@@ -166,6 +170,8 @@ class Engine:
         for row in idle.tolist():
             if self.breaches.status[row] != 0:
                 events.append(self.announce.closed_idle(row))
+            if self.peer_groups is not None and (ev := self.peer_groups.closed_idle(row)):
+                events.append(ev)
             self.pending.pop(row, None)
         self.table.release(idle)
         self.counters["series_evicted"] += idle.shape[0]
@@ -306,6 +312,12 @@ class Engine:
     # ------------------------------------------------------------ judging closed steps
 
     def _judge_all(self, closed: ClosedSteps) -> list[BreachEvent]:
+        events = self._judge_waves(closed)
+        if self.peer_groups is not None:  # group steps complete at this clock
+            events.extend(self.peer_groups.judge(self.clock))
+        return events
+
+    def _judge_waves(self, closed: ClosedSteps) -> list[BreachEvent]:
         tab = self.table
         n = tab.n
         # NaN steps (still being inferred) have no open step, so compare false and never close.
@@ -318,6 +330,8 @@ class Engine:
             closed = ClosedSteps(rows[order], k[order], val[order])
         if not len(closed):
             return []
+        if self.peer_groups is not None:
+            self.peer_groups.collect(closed)
         self.counters["steps_closed"] += len(closed)
         rows = closed.rows
         new_row = np.ones(rows.shape[0], dtype=bool)
@@ -455,6 +469,7 @@ class Engine:
             "series_active": int(live.sum()),
             "series_learning": int(learning.sum()) + len(self.pending),
             "breaches_open": int((live & (self.breaches.status[:n] != 0)).sum()),
+            "outliers_open": 0 if self.peer_groups is None else self.peer_groups.stats()["outliers_open"],
             "state_bytes": self.state_bytes_per_series() * int(live.sum()),
         }
 

@@ -86,6 +86,10 @@ class SeriesTable(ColumnState):
                 self.unmatched.clear()
             self.unmatched.add(key)
             return -1
+        return self.add(key, meta, rule, created)
+
+    def add(self, key: str, meta: tuple[str, Labels], rule: int, created: list[int]) -> int:
+        """Row for a new series of ``rule`` (appended to ``created``); -2 over ``max_series``."""
         if len(self.index) >= self.config.series.max_series:
             return -2
         if self.free:

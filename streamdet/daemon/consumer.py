@@ -37,7 +37,8 @@ from streamdet.daemon.state_store import Checkpoint, LocalStateStore, StateError
 
 log = logging.getLogger("streamdet.daemon")
 TP = tuple[str, int]
-_COUNTER_METRICS = ("points_accepted", "points_late")  # engine counter = metric attribute
+_COUNTER_METRICS = ("points_accepted", "points_late",  # engine counter = metric attribute
+                    "peer_groups_judged", "peer_members_judged")
 _DROP_REASONS = ("points_no_rule", "points_series_limit", "counter_samples_dropped")
 
 
@@ -52,6 +53,15 @@ class PartitionState:
     dirty: bool = False
     counters: Counter[str] = field(default_factory=Counter)
     key_cache: KeyCache = field(default_factory=KeyCache)  # raw record identity -> series key
+
+
+def split_groups(engines: list[Engine]) -> int:
+    """Peer groups that have live members in more than one partition's engine."""
+    seen: Counter[str] = Counter()
+    for eng in engines:
+        if eng.peer_groups is not None:
+            seen.update(eng.peer_groups.group_keys())
+    return sum(1 for n in seen.values() if n > 1)
 
 
 class Daemon:
@@ -359,6 +369,8 @@ class Daemon:
         m.series_active.set(stats["series_active"])
         m.series_learning.set(stats["series_learning"])
         m.breaches_open.set(stats["breaches_open"])
+        m.outliers_open.set(stats["outliers_open"])
+        m.peer_groups_split.set(split_groups([p.engine for p in self.parts.values()]))
         m.state_bytes.set(stats["state_bytes"])
         m.since_checkpoint.set(time.monotonic() - self._checkpoint_done)
         m.ready.set(1 if self.ready()[0] else 0)

@@ -66,6 +66,13 @@ class Metrics:
         self.series_active = g("series_active", "Series with state")
         self.series_learning = g("series_learning", "Series still in their learning period")
         self.breaches_open = g("breaches_open", "Breaches currently open")
+        # peer groups (rules with peers)
+        self.peer_groups_judged = c("peer_groups_judged", "Group steps judged (enough members with data)")
+        self.peer_members_judged = c("peer_members_judged", "Member steps judged against their group")
+        self.outliers_open = g("outliers_open", "Peer outliers currently open")
+        self.peer_groups_split = g("peer_groups_split",
+                                   "Peer groups with members in more than one input partition (judged "
+                                   "per partition: key the input by the group labels)")
         self.state_bytes = g("state_bytes", "Bytes of engine state arrays")
         self.lag = g("consumer_lag_messages", "Messages between the consumer and the end of the partition",
                      ["topic", "partition"])

@@ -84,7 +84,9 @@ class Sink:
             return
         headers = [("content-type", CONTENT_TYPE.encode())]
         for e in events:
-            self._produce(_Message(self.output_topic, e.series.encode(), e.to_json(self.source), headers,
+            # breaches are keyed by series, peer outliers by group: each stays in order
+            key = e.partition_key.encode()
+            self._produce(_Message(self.output_topic, key, e.to_json(self.source), headers,
                                    kind="event", source=f"{e.type} {e.id}", event_type=e.type,
                                    decided_at=decided_at))
 
