@@ -184,6 +184,8 @@ def routed_number(x: float | None) -> str:
 def parse_cloudevent(raw: bytes | str | Mapping[str, Any]) -> dict[str, Any]:
     """Decode and check a structured-mode CloudEvent produced by streamdet (used by tests and tools)."""
     doc = orjson.loads(raw) if isinstance(raw, bytes | str) else dict(raw)
+    if not isinstance(doc, dict):
+        raise ValueError(f"a CloudEvent is a JSON object, got {type(doc).__name__}")
     for attr in ("specversion", "id", "source", "type"):
         if not isinstance(doc.get(attr), str) or not doc[attr]:
             raise ValueError(f"CloudEvent lacks required attribute {attr!r}")

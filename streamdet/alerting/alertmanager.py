@@ -195,14 +195,12 @@ class AlertmanagerSink:
             return
         opened = self.firing.pop(e.opened_id or "", None)
         self.fresh.discard(e.opened_id or "")
+        ends = min(e.time, now)
         if opened is None:  # opened before a restart: the closed event's own labels
             opened = {"labels": alert_labels(e, routed), "annotations": dict(routed.annotations),
-                      "startsAt": rfc3339(min(e.started, now))}
-        ends = min(e.time, now)
+                      "startsAt": rfc3339(min(e.started, ends))}
         resolved = {**opened, "annotations": {**opened["annotations"], **routed.annotations},
-                    "endsAt": rfc3339(ends)}
-        if resolved["startsAt"] > resolved["endsAt"]:  # RFC 3339 UTC text sorts by time
-            resolved["startsAt"] = resolved["endsAt"]
+                    "endsAt": rfc3339(max(ends, e.started))}
         if len(self.resolved) >= self.settings.queue_size:
             self.resolved.pop(0)
             self.metrics.alertmanager_dropped.labels("pending_full").inc()
