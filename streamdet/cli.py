@@ -1,8 +1,9 @@
-"""Command line: ``streamdet run``, ``replay``, ``evaluate``, ``check`` and ``demo``."""
+"""Command line: ``streamdet run``, ``replay``, ``evaluate``, ``check``, ``tail`` and ``demo``."""
 
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import os
 import sys
 import time
@@ -188,17 +189,47 @@ def cmd_replay(args: argparse.Namespace) -> int:
         print(f"streamdet replay: {exc}", file=sys.stderr)
         return REPLAY_USAGE
     if args.events == "-":
-        write_events(result.events, sys.stdout.buffer)
+        write_events(result.events, sys.stdout.buffer, config=cfg)
         sys.stdout.flush()
     elif args.events:
         with open(args.events, "wb") as fh:
-            write_events(result.events, fh)
+            write_events(result.events, fh, config=cfg)
+    if args.alertmanager:
+        _post_replay_alerts(args.alertmanager, cfg, result.events)
     print(format_summary(result), file=sys.stderr if args.events == "-" else sys.stdout)
     if args.plot:
         paths = plot_series(result.engine, result.events, args.plot)
         print(f"plots: {len(paths)} PNG file(s) in {args.plot}",
               file=sys.stderr if args.events == "-" else sys.stdout)
     return REPLAY_OK
+
+
+def _post_replay_alerts(url: str, cfg: Config, events) -> None:
+    """Post a replay's events to Alertmanager (``--alertmanager URL``) and report the counts."""
+    from prometheus_client import CollectorRegistry
+
+    from streamdet.alerting.alertmanager import AlertmanagerSink, parse_alertmanager
+    from streamdet.alerting.routing import Encoder
+    from streamdet.config import _Section
+    from streamdet.daemon.health import Metrics
+
+    problems: list[str] = []
+    settings = parse_alertmanager(_Section({"url": url}, "--alertmanager", problems))
+    if problems or settings is None:
+        print("streamdet replay: " + "; ".join(problems), file=sys.stderr)
+        return
+    settings = dataclasses.replace(settings, queue_size=max(settings.queue_size, len(events) + 1))
+    metrics = Metrics(CollectorRegistry())
+    sink = AlertmanagerSink(settings, encoder=Encoder(cfg), metrics=metrics).start()
+    sink.submit(events)
+    sink.close(timeout=15.0)
+    get = metrics.registry.get_sample_value
+    sent = {s: int(get("streamdet_alertmanager_alerts_sent_total", {"state": s}) or 0)
+            for s in ("firing", "resolved")}
+    failed = sum(int(get("streamdet_alertmanager_post_failures_total", {"reason": r}) or 0)
+                 for r in ("connection", "timeout", "server_error", "http_error", "refused"))
+    print(f"alertmanager: {sent['firing']} firing and {sent['resolved']} resolved alert(s) posted to "
+          f"{settings.url}" + (f"; {failed} failed post(s), see the log" if failed else ""), file=sys.stderr)
 
 
 def cmd_evaluate(args: argparse.Namespace) -> int:
@@ -297,6 +328,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--format", choices=("csv", "json", "influx"),
                    help="input format (default: from each file's extension; required for others, "
                         "e.g. .txt)")
+    p.add_argument("--alertmanager", metavar="URL",
+                   help="also post the events to this Alertmanager (firing and resolved alerts)")
     p.set_defaults(func=cmd_replay)
     r = sub.add_parser("run", help="run the Kafka daemon until SIGTERM")
     r.add_argument("--config", "-c", help="YAML config; STREAMDET_* environment variables override it")
@@ -326,6 +359,11 @@ def build_parser() -> argparse.ArgumentParser:
     v.add_argument("--format", choices=("csv", "json", "influx"),
                    help="input format (default: from each file's extension)")
     v.set_defaults(func=cmd_evaluate)
+    t = sub.add_parser("tail", help="follow breach events (output topic or events file) as readable lines")
+    from streamdet.alerting import tail as tail_mod
+
+    tail_mod.add_arguments(t)
+    t.set_defaults(func=tail_mod.main)
     c = sub.add_parser("check", help="validate a config file (exit code 2 on errors)")
     c.add_argument("config")
     c.set_defaults(func=cmd_check)

@@ -21,6 +21,9 @@ from typing import Any
 
 import yaml
 
+from streamdet.alerting.templates import NAME as TEMPLATE_NAME
+from streamdet.alerting.templates import Template, TemplateError
+
 AGGREGATIONS = ("mean", "sum", "min", "max", "last", "count")
 DIRECTIONS = ("both", "above", "below")
 KINDS = ("gauge", "counter")
@@ -141,6 +144,29 @@ class PeerParams:
     total: str | None = None  # sum | mean: the group's per-step total as a derived series
 
 
+# ---- alert routing (issue 10): read by streamdet.alerting, never by the core
+@dataclass(frozen=True, slots=True, kw_only=True)
+class SeverityLevels:
+    """Surprise (-log10 p of the breach's evidence) at which an event becomes ``warning`` and
+    ``critical``; below ``warning`` it is ``info``. Width 3 opens at a surprise of about 5.1."""
+
+    warning: float = 6.0
+    critical: float = 10.0
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class Routing:
+    """Static ``labels`` and templated ``annotations`` a rule adds to its events and alerts."""
+
+    labels: tuple[tuple[str, str], ...] = ()
+    annotations: tuple[tuple[str, Template], ...] = ()
+    severity: SeverityLevels = field(default_factory=SeverityLevels)
+
+
+_LABEL_NAME = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")  # Alertmanager's (Prometheus') label names
+# ---- end of alert routing
+
+
 @dataclass(frozen=True, slots=True, kw_only=True)
 class Rule:
     """Settings for the series a rule selects. Defaults are the README's."""
@@ -164,6 +190,7 @@ class Rule:
     forecasters: ForecasterParams = field(default_factory=ForecasterParams)
     blend: BlendParams = field(default_factory=BlendParams)
     peers: PeerParams | None = None
+    routing: Routing = field(default_factory=Routing)
 
     @property
     def edge_rarity(self) -> float:
@@ -457,6 +484,43 @@ def _parse_peers(s: _Section, step: float | None) -> PeerParams | None:
     )
     s.done()
     return params
+def _parse_routing(s: _Section) -> Routing:
+    """The rule's ``labels``, ``annotations`` and ``severity`` keys (alert routing)."""
+    labels: list[tuple[str, str]] = []
+    lab = s.section("labels")
+    for name, value in lab.raw.items():
+        lab.seen.add(name)
+        if not isinstance(name, str) or not _LABEL_NAME.fullmatch(name):
+            lab.bad(str(name), "a label name is letters, digits and underscores, not starting with a digit")
+        elif name in ("severity", "metric"):
+            lab.bad(name, f"{name!r} is set by streamdet (see the README, 'Routing alerts')")
+        elif isinstance(value, bool) or not isinstance(value, str | int | float) or value == "":
+            lab.bad(name, f"expected a non-empty string, got {value!r}")
+        else:
+            labels.append((name, str(value)))
+    lab.done()
+    annotations: list[tuple[str, Template]] = []
+    ann = s.section("annotations")
+    for name, value in ann.raw.items():
+        ann.seen.add(name)
+        if not isinstance(name, str) or not TEMPLATE_NAME.fullmatch(name):
+            ann.bad(str(name), "an annotation name is letters, digits and underscores")
+            continue
+        try:
+            annotations.append((name, Template.parse(value)))
+        except TemplateError as exc:
+            ann.bad(name, str(exc))
+    ann.done()
+    sev = s.section("severity")
+    d = SeverityLevels()
+    warning = sev.number("warning", d.warning, lo=0.0)
+    critical = sev.number("critical", d.critical, lo=0.0)
+    if critical < warning:
+        sev.bad("critical", f"must be >= warning ({warning:g}), got {critical:g}")
+        critical = warning
+    sev.done()
+    return Routing(labels=tuple(labels), annotations=tuple(annotations),
+                   severity=SeverityLevels(warning=warning, critical=critical))
 
 
 def _parse_rule(s: _Section, index: int) -> Rule:
@@ -509,6 +573,7 @@ def _parse_rule(s: _Section, index: int) -> Rule:
         forecasters=_parse_forecasters(s.section("forecasters")),
         blend=blend,
         peers=None if s.get("peers", None) is None else _parse_peers(s.section("peers"), step),
+        routing=_parse_routing(s),
     )
     s.done()
     return rule

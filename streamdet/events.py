@@ -12,9 +12,12 @@ import uuid
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import orjson
+
+if TYPE_CHECKING:
+    from streamdet.alerting.routing import Routed
 
 OPENED = "streamdet.breach.opened"
 CLOSED = "streamdet.breach.closed"
@@ -95,33 +98,50 @@ class BreachEvent:
         """Kafka message key: a series' events stay in order on one partition."""
         return self.series
 
-    def data(self) -> dict[str, Any]:
+    def data(self, routed: Routed | None = None, detected_at: float | None = None) -> dict[str, Any]:
+        """The ``data`` member: what a person reads first (summary, severity, series, rounded
+        numbers), then the exact numbers, the routing labels and annotations, and the
+        forecaster weights last. ``detected_at`` is wall-clock time (None: not stamped)."""
+        if routed is None:
+            from streamdet.alerting.routing import route
+
+            routed = route(self, None)
         d: dict[str, Any] = {
+            "summary": routed.summary,
+            "severity": routed.severity,
             "metric": self.metric,
             "labels": dict(self.labels),
             "rule": self.rule,
-            "step_start": rfc3339(self.step_start),
-            "step_end": rfc3339(self.step_end),
+            "direction": self.direction,
             "observed": _num(self.observed),
             "expected": _num(self.expected),
             "lower": _num(self.lower),
             "upper": _num(self.upper),
-            "score": _num(self.score),
-            "direction": self.direction,
-            "width": self.width,
-            "weights": {k: round(v, 4) for k, v in self.weights.items()},
+            "display": {k: routed_number(getattr(self, k)) for k in ("observed", "expected", "lower",
+                                                                     "upper")},
+            "step_start": rfc3339(self.step_start),
+            "step_end": rfc3339(self.step_end),
             "started": rfc3339(self.started),
+            "detected_at": rfc3339(detected_at) if detected_at is not None else None,
+            "detection_delay_seconds": (round(detected_at - self.step_end, 3)
+                                        if detected_at is not None else None),
             "p_value": _p(self.p_value),
             "surprise": _num(round(self.surprise, 3) if math.isfinite(self.surprise) else self.surprise),
+            "score": _num(self.score),
+            "width": self.width,
+            "routing": {"labels": dict(routed.labels), "annotations": dict(routed.annotations)},
         }
         if self.type == CLOSED:
             d["duration_seconds"] = self.duration
             d["worst_score"] = _num(self.worst_score)
             d["opened_id"] = self.opened_id
             d["reason"] = self.reason
+        d["weights"] = {k: round(v, 4) for k, v in self.weights.items()}
         return d
 
-    def to_cloudevent(self, source: str = "streamdet") -> dict[str, Any]:
+    def to_cloudevent(self, source: str = "streamdet", *, routed: Routed | None = None,
+                      detected_at: float | None = None) -> dict[str, Any]:
+        data = self.data(routed, detected_at)
         return {
             "specversion": "1.0",
             "id": self.id,
@@ -130,11 +150,13 @@ class BreachEvent:
             "subject": self.series,
             "time": rfc3339(self.time),
             "datacontenttype": "application/json",
-            "data": self.data(),
+            "severity": data["severity"],  # extension attribute: routers can filter without data
+            "data": data,
         }
 
-    def to_json(self, source: str = "streamdet") -> bytes:
-        return orjson.dumps(self.to_cloudevent(source))
+    def to_json(self, source: str = "streamdet", *, routed: Routed | None = None,
+                detected_at: float | None = None) -> bytes:
+        return orjson.dumps(self.to_cloudevent(source, routed=routed, detected_at=detected_at))
 
     def one_line(self) -> str:
         """Human-readable summary for terminals."""
@@ -256,15 +278,25 @@ def _p(x: float) -> float | None:
 
 
 def _num(x: float | None) -> float | None:
+    """A number at full precision, or None when it is missing or not finite."""
     if x is None:
         return None
     x = float(x)
-    return round(x, 9) if math.isfinite(x) else None
+    return x if math.isfinite(x) else None
+
+
+def routed_number(x: float | None) -> str:
+    """The number as people read it (three significant digits; see alerting.routing)."""
+    from streamdet.alerting.routing import human_number
+
+    return human_number(x)
 
 
 def parse_cloudevent(raw: bytes | str | Mapping[str, Any]) -> dict[str, Any]:
     """Decode and check a structured-mode CloudEvent produced by streamdet (used by tests and tools)."""
     doc = orjson.loads(raw) if isinstance(raw, bytes | str) else dict(raw)
+    if not isinstance(doc, dict):
+        raise ValueError(f"a CloudEvent is a JSON object, got {type(doc).__name__}")
     for attr in ("specversion", "id", "source", "type"):
         if not isinstance(doc.get(attr), str) or not doc[attr]:
             raise ValueError(f"CloudEvent lacks required attribute {attr!r}")

@@ -98,9 +98,15 @@ def replay(paths: Sequence[str | Path], config: Config, *, fmt: str | None = Non
     return result
 
 
-def write_events(events: Sequence[BreachEvent], out: IO[bytes], source: str = "streamdet") -> None:
+def write_events(events: Sequence[BreachEvent], out: IO[bytes], source: str = "streamdet",
+                 config: Config | None = None) -> None:
+    """CloudEvents JSON lines with the rules' routing data; ``detected_at`` stays null (a replay
+    detects nothing live: its wall-clock time would say nothing about delay)."""
+    from streamdet.alerting.routing import Encoder
+
+    encoder = Encoder(config, source)
     for e in events:
-        out.write(e.to_json(source))
+        out.write(encoder.to_json(e))
         out.write(b"\n")
 
 

@@ -24,6 +24,8 @@ from dataclasses import dataclass, field
 
 from confluent_kafka import Consumer, KafkaError, KafkaException, Message, TopicPartition
 
+from streamdet.alerting.alertmanager import alertmanager_sink
+from streamdet.alerting.routing import Encoder
 from streamdet.codecs import TimeRules, decode_influx
 from streamdet.codecs.json import decode_json_messages
 from streamdet.config import Config
@@ -129,7 +131,10 @@ class Daemon:
         self.sink = Sink(metrics=self.metrics, source=self.settings.source,
                          producer_conf=self.producer_conf(), output_topic=self.settings.output_topic,
                          dead_letter_topic=self.settings.dead_letter_topic, events_file=self.events_file,
-                         log_interval=self.log_interval)
+                         log_interval=self.log_interval,
+                         # alert routing (issue 10): routed encoding and the optional Alertmanager sink
+                         encoder=Encoder(self.config, self.settings.source),
+                         alerts=alertmanager_sink(self.config, self.settings, self.metrics))
         self.consumer = Consumer(self.consumer_conf())
         self.consumer.subscribe(list(self.settings.input_topics), on_assign=self._on_assign,
                                 on_revoke=self._on_revoke, on_lost=self._on_lost)

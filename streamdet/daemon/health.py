@@ -81,6 +81,17 @@ class Metrics:
         self.batch_seconds = Histogram(f"{NS}_batch_processing_seconds", "Time to process one batch",
                                        registry=registry,
                                        buckets=(0.001, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1, 2.5))
+        # Alertmanager sink (streamdet.alerting.alertmanager)
+        self.alertmanager_alerts_sent = c("alertmanager_alerts_sent", "Alerts Alertmanager accepted, "
+                                          "re-sends included, by state (firing or resolved)", ["state"])
+        self.alertmanager_post_failures = c("alertmanager_post_failures", "Posts to Alertmanager that "
+                                            "failed, by reason (connection, timeout, server_error, "
+                                            "http_error, refused)", ["reason"])
+        self.alertmanager_rejected = c("alertmanager_rejected", "Alerts Alertmanager refused (HTTP 400), "
+                                       "dropped")
+        self.alertmanager_dropped = c("alertmanager_dropped", "Events or resolutions dropped before "
+                                      "posting, by reason (queue_full, pending_full)", ["reason"])
+        self.alertmanager_firing = g("alertmanager_firing", "Firing alerts being re-sent to Alertmanager")
         self.delivery_delay = Histogram(
             f"{NS}_step_close_to_delivery_seconds",
             "Wall time from the step close that decided an event to its delivery acknowledgement",

@@ -23,6 +23,7 @@ from typing import IO
 
 from confluent_kafka import KafkaError, KafkaException, Producer
 
+from streamdet.alerting.routing import Encoder
 from streamdet.daemon.health import Metrics
 from streamdet.daemon.logs import RateLimitedLog
 from streamdet.events import CONTENT_TYPE, BreachEvent
@@ -56,9 +57,14 @@ class Sink:
 
     def __init__(self, *, metrics: Metrics, source: str, producer_conf: dict[str, str] | None,
                  output_topic: str | None, dead_letter_topic: str | None,
-                 events_file: str | None = None, log_interval: float = 10.0) -> None:
+                 events_file: str | None = None, log_interval: float = 10.0,
+                 encoder: Encoder | None = None, alerts=None) -> None:
         self.metrics = metrics
         self.source = source
+        # Routing data (severity, summary, labels, annotations) and the wall-clock detection time
+        # are added here, in the adapter; ``alerts`` (an AlertmanagerSink) gets every event too.
+        self.encoder = encoder or Encoder(None, source)
+        self.alerts = alerts
         self.output_topic = output_topic
         self.dead_letter_topic = dead_letter_topic
         self.file: IO[bytes] | None = open(events_file, "ab") if events_file else None  # noqa: SIM115
@@ -74,9 +80,12 @@ class Sink:
     # ------------------------------------------------------------ sending
 
     def send(self, events: Sequence[BreachEvent], decided_at: float) -> None:
+        detected_at = time.time()  # wall clock of the detection, beside the data time
+        if self.alerts is not None and events:
+            self.alerts.submit(events)  # never blocks: a bounded queue, drops counted
         if self.file is not None:
             for e in events:
-                self.file.write(e.to_json(self.source) + b"\n")
+                self.file.write(self.encoder.to_json(e, detected_at) + b"\n")
                 self.metrics.events_out.labels(e.type).inc()
                 self.metrics.delivery_delay.observe(max(0.0, time.monotonic() - decided_at))
             return
@@ -85,8 +94,8 @@ class Sink:
         headers = [("content-type", CONTENT_TYPE.encode())]
         for e in events:
             # breaches are keyed by series, peer outliers by group: each stays in order
-            key = e.partition_key.encode()
-            self._produce(_Message(self.output_topic, key, e.to_json(self.source), headers,
+            self._produce(_Message(self.output_topic, e.partition_key.encode(),
+                                   self.encoder.to_json(e, detected_at), headers,
                                    kind="event", source=f"{e.type} {e.id}", event_type=e.type,
                                    decided_at=decided_at))
 
@@ -183,6 +192,8 @@ class Sink:
 
     def close(self, timeout: float = 5.0) -> bool:
         ok = self.flush(timeout)
+        if self.alerts is not None:
+            self.alerts.close(timeout)
         if self.file is not None:
             self.file.close()
         return ok

@@ -23,6 +23,7 @@ from typing import Any
 
 from confluent_kafka import Consumer, KafkaException, Producer
 
+from streamdet.alerting.alertmanager import AlertmanagerSettings, parse_alertmanager
 from streamdet.config import Config, ConfigError, _Section, read_config_file
 
 # Property names whose values are secrets (issue 7: password, secret, key, token and
@@ -53,6 +54,7 @@ class DaemonSettings:
     source: str = "streamdet"
     log_format: str = "text"
     log_level: str = "info"
+    alertmanager: AlertmanagerSettings | None = None  # output.alertmanager
 
     @property
     def health_host_port(self) -> tuple[str, int]:
@@ -165,6 +167,7 @@ def parse_settings(config: Config) -> DaemonSettings:
     h.done()
     o = _Section(config.extra.get("output"), "output", problems)
     kw["source"] = o.text("source", d.source)
+    kw["alertmanager"] = parse_alertmanager(o.section("alertmanager"))
     o.done()
     lg = _Section(config.extra.get("logging"), "logging", problems)
     kw["log_format"] = lg.choice("format", d.log_format, ("text", "json"))

@@ -1,0 +1,1 @@
+"""Alert routing: labels, annotations, severity and summaries for events; the Alertmanager sink."""
