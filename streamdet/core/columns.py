@@ -19,6 +19,7 @@ class ColumnState:
     """Arrays of shape ``(capacity, *tail)`` named by ``COLUMNS``; attributes of the instance."""
 
     COLUMNS: ClassVar[ColumnSpec] = {}
+    OPTIONAL: ClassVar[frozenset[str]] = frozenset()  # columns an older snapshot may lack (reset)
     prefix: str = ""
 
     def __init__(self, capacity: int = 0) -> None:
@@ -56,8 +57,11 @@ class ColumnState:
     def load(self, arrays: dict[str, np.ndarray], n: int) -> None:
         """Inverse of :meth:`state`; a missing or misshapen array raises ValueError naming it."""
         self.grow(max(n, 1))
-        for name, (dtype, tail, _fill) in self.columns().items():
+        for name, (dtype, tail, fill) in self.columns().items():
             key = f"{self.prefix}.{name}"
+            if key not in arrays and name in self.OPTIONAL:
+                getattr(self, name)[:n] = fill
+                continue
             if key not in arrays:
                 raise ValueError(f"snapshot lacks array {key!r}")
             arr = arrays[key]
