@@ -303,7 +303,7 @@ _metric = st.one_of(
 def test_arbitrary_protobuf_requests_never_raise(metrics, resource_attrs):
     req = ExportMetricsServiceRequest(resource_metrics=[pb.ResourceMetrics(
         resource=Resource(attributes=resource_attrs), scope_metrics=[pb.ScopeMetrics(metrics=metrics)])])
-    dec = OtlpDecoder(("",) + tuple(kv.key for kv in resource_attrs))
+    dec = OtlpDecoder(("", *(kv.key for kv in resource_attrs)))
     for data, d in ((b := req.SerializeToString(), dec.decode(b)),
                     (j := json_format.MessageToJson(req).encode(), OtlpDecoder(json=True).decode(j))):
         assert np.isfinite(d.points.value).all() and np.isfinite(d.points.time).all(), data

@@ -360,7 +360,7 @@ def decode_otlp_json(data: bytes, *, prefix: str = "", rules: TimeRules = _DEFAU
                                                            builder=builder)
 
 
-def encode_gauges(points: Sequence[dict], *, json: bool = False, unit: str = "",
+def encode_gauges(points: Sequence[dict], *, json: bool = False, units: dict[str, str] | None = None,
                   resource: dict[str, str] | None = None) -> bytes:
     """Points in our JSON shape (``metric``, ``labels``, ``time``, ``value``) as one OTLP
     request of gauges, labels as point attributes: for the demo, tests and benchmarks.
@@ -378,7 +378,7 @@ def encode_gauges(points: Sequence[dict], *, json: bool = False, unit: str = "",
         by_metric.setdefault(p["metric"], []).append(pb.NumberDataPoint(
             time_unix_nano=round(p["time"] * 1e9), as_double=p["value"],
             attributes=[KeyValue(key=k, value=AnyValue(string_value=v)) for k, v in p["labels"].items()]))
-    metrics = [pb.Metric(name=name, unit=unit, gauge=pb.Gauge(data_points=dps))
+    metrics = [pb.Metric(name=name, unit=(units or {}).get(name, ""), gauge=pb.Gauge(data_points=dps))
                for name, dps in by_metric.items()]
     res = Resource(attributes=[KeyValue(key=k, value=AnyValue(string_value=v))
                                for k, v in (resource or {}).items()])
