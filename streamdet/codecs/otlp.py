@@ -212,8 +212,7 @@ class OtlpDecoder:
 
     def _add(self, out: PointBuilder, metric: str, labels: Labels, t: float, v: float,
              note: SeriesNote) -> None:
-        check_series(metric, labels)
-        out.add(metric, labels, t, v)
+        out.add_checked(metric, labels, t, v, check_series)
         if note is not _GAUGE:
             out.note(note)
 

@@ -7,7 +7,7 @@ labels of every key it mentions, so the engine can register new series.
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Mapping
+from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -199,6 +199,14 @@ class PointBuilder:
         self.keys.append(key)
         self.times.append(time)
         self.values.append(value)
+
+    def add_checked(self, metric: str, labels: Labels, time: float, value: float,
+                    check: Callable[[str, Labels], None]) -> None:
+        """:meth:`add`, running ``check(metric, labels)`` first (it may raise) only for a series
+        this builder has not added before."""
+        if (metric, labels) not in self._cache:
+            check(metric, labels)
+        self.add(metric, labels, time, value)
 
     def note(self, note: SeriesNote) -> None:
         """Attach ``note`` to the series of the point added last."""
