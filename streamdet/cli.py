@@ -10,7 +10,7 @@ import time
 from collections.abc import Sequence
 from pathlib import Path
 
-from streamdet.config import Config, ConfigError, load_config, parse_config
+from streamdet.config import FORMATS, Config, ConfigError, load_config, parse_config
 
 
 def _load(path: str | None) -> Config:
@@ -325,9 +325,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--config", "-c", help="YAML config (default: built-in defaults)")
     p.add_argument("--events", "-e", help="write events as CloudEvents JSON lines here ('-' = stdout)")
     p.add_argument("--plot", metavar="DIR", help="write a PNG per series that breached into DIR")
-    p.add_argument("--format", choices=("csv", "json", "influx"),
-                   help="input format (default: from each file's extension; required for others, "
-                        "e.g. .txt)")
+    p.add_argument("--format", choices=FORMATS,
+                   help="input format (default: from each file's extension, .otlp.json and .pb for "
+                        "OTLP; required for others, e.g. .txt or Telegraf JSON)")
     p.add_argument("--alertmanager", metavar="URL",
                    help="also post the events to this Alertmanager (firing and resolved alerts)")
     p.set_defaults(func=cmd_replay)
@@ -342,8 +342,11 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--out", default="demo-out", help="where plots and demo state go")
     d.add_argument("--bootstrap-servers", help="use this Kafka instead of starting the bundled broker")
     d.add_argument("--produce-only", action="store_true", help="only produce the scenario's points")
+    d.add_argument("--format", choices=("json", "otlp_proto", "otlp_json"), default="json",
+                   help="how the scenario is put on the topic (OTLP: as the Collector's Kafka "
+                        "exporter writes it)")
     d.set_defaults(func=lambda a: __import__("streamdet.demo", fromlist=["run_demo"]).run_demo(
-        a.out, a.bootstrap_servers, a.produce_only))
+        a.out, a.bootstrap_servers, a.produce_only, fmt=a.format))
     v = sub.add_parser("evaluate", help="score breaches against labelled incident windows; sweep settings")
     v.add_argument("inputs", nargs="+", help="CSV, JSON lines (.jsonl) or line-protocol (.lp) files")
     v.add_argument("--labels", "-l", required=True,
@@ -356,7 +359,7 @@ def build_parser() -> argparse.ArgumentParser:
     v.add_argument("--target-false-per-day", type=float, metavar="X",
                    help="pick the combination with most detections at or under X false per series-day")
     v.add_argument("--jobs", "-j", type=int, help="worker processes (default: CPU count)")
-    v.add_argument("--format", choices=("csv", "json", "influx"),
+    v.add_argument("--format", choices=FORMATS,
                    help="input format (default: from each file's extension)")
     v.set_defaults(func=cmd_evaluate)
     t = sub.add_parser("tail", help="follow breach events (output topic or events file) as readable lines")

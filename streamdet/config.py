@@ -27,7 +27,9 @@ from streamdet.alerting.templates import Template, TemplateError
 AGGREGATIONS = ("mean", "sum", "min", "max", "last", "count")
 DIRECTIONS = ("both", "above", "below")
 KINDS = ("gauge", "counter")
-FORMATS = ("json", "influx", "csv")
+FORMATS = ("json", "influx", "csv", "telegraf_json", "otlp_proto", "otlp_json")
+TIME_UNITS = ("s", "ms", "us", "ns")
+DEFAULT_RESOURCE_LABELS = ("service.name", "service.instance.id", "host.name")
 _UNITS = {"s": 1, "m": 60, "h": 3600, "d": 86400, "w": 604800}
 _DURATION = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*(ms|s|m|h|d|w)?\s*$")
 _STEPS = re.compile(r"^\s*(\d+)\s*steps?\s*$")
@@ -223,10 +225,33 @@ class SeriesLimits:
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
+class JsonMapping:
+    """Key names of the JSON input (``input.json``) for producers with their own shape.
+
+    ``time_unit`` "auto" tells epoch units apart by magnitude; ``label_keys`` lifts top-level
+    keys into labels.
+    """
+
+    metric_key: str = "metric"
+    labels_key: str = "labels"
+    time_key: str = "time"
+    value_key: str = "value"
+    time_unit: str = "auto"
+    label_keys: tuple[str, ...] = ()
+
+    @property
+    def is_default(self) -> bool:
+        return self == JsonMapping()
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
 class InputConfig:
     format: str = "json"
     max_future: float = 3600.0
     influx_precision: str = "ns"
+    telegraf_units: str = "s"  # Telegraf's json_timestamp_units
+    json: JsonMapping = field(default_factory=JsonMapping)
+    resource_labels: tuple[str, ...] = DEFAULT_RESOURCE_LABELS  # OTLP resource attributes kept
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -579,6 +604,46 @@ def _parse_rule(s: _Section, index: int) -> Rule:
     return rule
 
 
+def _strings(s: _Section, name: str, default: tuple[str, ...]) -> tuple[str, ...]:
+    raw = s.get(name, list(default))
+    if not isinstance(raw, list) or not all(isinstance(x, str) and x for x in raw):
+        s.bad(name, f"expected a list of non-empty strings, got {raw!r}")
+        return default
+    return tuple(raw)
+
+
+def parse_input(s: _Section, base: InputConfig | None = None) -> InputConfig:
+    """The ``input`` section (or a per-topic override of it: keys not given keep ``base``)."""
+    d = base or InputConfig()
+    telegraf_units = s.get("telegraf_units", d.telegraf_units)
+    if isinstance(telegraf_units, str) and telegraf_units.startswith("1"):
+        telegraf_units = telegraf_units[1:]  # Telegraf writes json_timestamp_units = "1ms"
+    if telegraf_units not in TIME_UNITS:
+        s.bad("telegraf_units", f"expected one of {', '.join(TIME_UNITS)}, got {telegraf_units!r}")
+        telegraf_units = d.telegraf_units
+    j = s.section("json")
+    dj = d.json
+    mapping = JsonMapping(
+        metric_key=j.text("metric_key", dj.metric_key), labels_key=j.text("labels_key", dj.labels_key),
+        time_key=j.text("time_key", dj.time_key), value_key=j.text("value_key", dj.value_key),
+        time_unit=j.choice("time_unit", dj.time_unit, ("auto", *TIME_UNITS)),
+        label_keys=_strings(j, "label_keys", dj.label_keys))
+    keys = [mapping.metric_key, mapping.labels_key, mapping.time_key, mapping.value_key]
+    if len(set(keys)) < 4 or set(keys) & set(mapping.label_keys):
+        j.bad("(keys)", "metric_key, labels_key, time_key, value_key and label_keys must all differ")
+    j.done()
+    o = s.section("otlp")
+    resource_labels = _strings(o, "resource_labels", d.resource_labels)
+    o.done()
+    cfg = InputConfig(
+        format=s.choice("format", d.format, FORMATS),
+        max_future=s.duration("max_future", d.max_future),
+        influx_precision=s.choice("influx_precision", d.influx_precision, TIME_UNITS),
+        telegraf_units=telegraf_units, json=mapping, resource_labels=resource_labels)
+    s.done()
+    return cfg
+
+
 ADAPTER_SECTIONS = ("kafka", "state", "health", "output", "logging", "shadow")
 
 
@@ -604,13 +669,7 @@ def parse_config(raw: object) -> Config:
         idle_ttl=srs.duration("idle_ttl", _DEFAULTS['SeriesLimits'].idle_ttl, positive=True),
     )
     srs.done()
-    inp = top.section("input")
-    input_cfg = InputConfig(
-        format=inp.choice("format", _DEFAULTS['InputConfig'].format, FORMATS),
-        max_future=inp.duration("max_future", _DEFAULTS['InputConfig'].max_future),
-        influx_precision=inp.choice("influx_precision", "ns", ("s", "ms", "us", "ns")),
-    )
-    inp.done()
+    input_cfg = parse_input(top.section("input"))
     eng = top.section("engine")
     lag_resolution = eng.duration("lag_resolution", 7200.0, positive=True)
     if lag_resolution > 86400 or 86400 % lag_resolution:

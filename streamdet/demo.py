@@ -11,7 +11,9 @@ weeks of history at 5-minute steps, then a live day with three incidents:
 
 Four ``cpu_utilisation`` host series stay healthy. The demo starts the bundled broker on
 127.0.0.1 (unless ``--bootstrap-servers`` is given), produces the scenario, runs the daemon,
-prints each event as it arrives, and writes PNG plots to ``--out``.
+prints each event as it arrives, and writes PNG plots to ``--out``. With ``--format otlp_proto``
+(or ``otlp_json``) the scenario travels as OTLP requests, as an OpenTelemetry Collector's Kafka
+exporter would put it on the topic.
 """
 
 from __future__ import annotations
@@ -77,18 +79,37 @@ DEMO_RULES = {
 }
 
 
-def produce(bootstrap: str, topic: str, points: list[dict]) -> None:
+def messages(points: list[dict], fmt: str = "json") -> list[tuple[bytes, bytes]]:
+    """(key, value) messages: one JSON point each, or (``otlp_proto`` / ``otlp_json``) one
+    ExportMetricsServiceRequest per step holding every series' point of that step, as a
+    Collector's Kafka exporter sends a batch (one message key: the requests stay in order)."""
+    if fmt == "json":
+        return [(orjson.dumps([pt["metric"], pt["labels"]]), orjson.dumps(pt)) for pt in points]
+    from streamdet.codecs.otlp import encode_gauges
+
+    steps: dict[float, list[dict]] = {}
+    for pt in points:
+        steps.setdefault(pt["time"] // STEP, []).append(pt)
+    return [(b"larkspur-shop", encode_gauges(chunk, json=fmt == "otlp_json", units=UNITS,
+                                             resource={"service.name": "larkspur-shop"}))
+            for chunk in steps.values()]
+
+
+UNITS = {"checkout_latency_seconds": "s", "cpu_utilisation": "1", "orders_per_minute": "{order}/min",
+         "packing_queue_depth": "{parcel}"}
+
+
+def produce(bootstrap: str, topic: str, points: list[dict], fmt: str = "json") -> None:
     import logging
 
     from confluent_kafka import Producer
 
     p = Producer({"bootstrap.servers": bootstrap, "linger.ms": 20, "enable.idempotence": True,
                   "logger": logging.getLogger("streamdet.librdkafka")})
-    for pt in points:
-        key = orjson.dumps([pt["metric"], pt["labels"]])
+    for key, value in messages(points, fmt):
         while True:
             try:
-                p.produce(topic, key=key, value=orjson.dumps(pt))
+                p.produce(topic, key=key, value=value)
                 break
             except BufferError:
                 p.poll(0.1)
@@ -97,7 +118,7 @@ def produce(bootstrap: str, topic: str, points: list[dict]) -> None:
 
 
 def run_demo(out: str = "demo-out", bootstrap: str | None = None, produce_only: bool = False,
-             timeout: float = 90.0) -> int:
+             timeout: float = 90.0, fmt: str = "json") -> int:
     import logging
 
     from confluent_kafka import Consumer
@@ -124,12 +145,13 @@ def run_demo(out: str = "demo-out", bootstrap: str | None = None, produce_only: 
                                       NewTopic(topics["dlq"], 1, 1)]).values():
             f.result(15)
         points = scenario(time.time())
-        print(f"producing {len(points):,} points: {HISTORY_DAYS} days of history and a live day "
-              f"of Larkspur Tea Co. metrics (5-minute steps) ...")
-        produce(bootstrap, topics["in"], points)
+        print(f"producing {len(points):,} points ({fmt}): {HISTORY_DAYS} days of history and a live "
+              f"day of Larkspur Tea Co. metrics (5-minute steps) ...")
+        produce(bootstrap, topics["in"], points, fmt)
         if produce_only:
             return 0
-        cfg = parse_config({**DEMO_RULES, "kafka": {
+        cfg = parse_config({**DEMO_RULES, "input": {"format": fmt, "otlp": {"resource_labels": []}},
+                            "kafka": {
             "bootstrap_servers": bootstrap, "group_id": f"demo-{run_id}", "input_topics": [topics["in"]],
             "output_topic": topics["out"], "dead_letter_topic": topics["dlq"], "session_timeout": "6s",
             "checkpoint_interval": "2s"},
@@ -168,7 +190,7 @@ def run_demo(out: str = "demo-out", bootstrap: str | None = None, produce_only: 
         print(f"\nsummary: {int(get('streamdet_records_in_total') or 0):,} records in, "
               f"{int(get('streamdet_points_accepted_total') or 0):,} points accepted, "
               f"{seen['streamdet.breach.opened']} breaches opened, {seen['streamdet.breach.closed']} closed")
-        written = write_plots(points, cfg, out)
+        written = write_plots(points, cfg, out, fmt)
         print(f"plots: {len(written)} PNG file(s) in {out}/")
         return 0
     finally:
@@ -180,24 +202,24 @@ def run_demo(out: str = "demo-out", bootstrap: str | None = None, produce_only: 
 def describe(doc: dict) -> str:
     d = doc["data"]
     if doc["type"].endswith("opened"):
+        unit = f" {d['unit']}" if d.get("unit") else ""
         return (f"{doc['time']}  OPENED  {doc['subject']:<46} {d['direction']:<5} "
-                f"observed {d['observed']:.4g}  expected {d['expected']:.4g}  "
+                f"observed {d['observed']:.4g}{unit}  expected {d['expected']:.4g}  "
                 f"band [{d['lower']:.4g}, {d['upper']:.4g}]")
     return (f"{doc['time']}  CLOSED  {doc['subject']:<46} after {d['duration_seconds'] / 60:.0f} min,"
             f" worst score {d['worst_score']:+.1f} ({d['reason']})")
 
 
-def write_plots(points: list[dict], cfg, out: str) -> list[Path]:
-    """Plots from a replay of the same points (the same engine, hence the same events)."""
+def write_plots(points: list[dict], cfg, out: str, fmt: str = "json") -> list[Path]:
+    """Plots from a replay of the same messages (the same engine, hence the same events; OTLP
+    units label the axes)."""
+    from streamdet.codecs.readers import MessageReader
     from streamdet.core.engine import Engine
-    from streamdet.core.points import PointBuilder, normalise_labels
     from streamdet.plots import plot_series
 
-    b = PointBuilder()
-    for p in points:
-        b.add(p["metric"], normalise_labels(p["labels"]), p["time"], p["value"])
+    batch, _bad, _n = MessageReader(cfg.input).decode_messages([v for _k, v in messages(points, fmt)], str)
     eng = Engine(cfg, record_steps=True)
-    events = eng.ingest(b.build())
+    events = eng.ingest(batch)
     last = max(p["time"] for p in points)
     return plot_series(eng, events, out, since=last - 2 * 86400)
 
@@ -209,8 +231,9 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--out", default="demo-out")
     ap.add_argument("--bootstrap-servers")
     ap.add_argument("--produce-only", action="store_true")
+    ap.add_argument("--format", choices=("json", "otlp_proto", "otlp_json"), default="json")
     args = ap.parse_args(argv)
-    return run_demo(args.out, args.bootstrap_servers, args.produce_only)
+    return run_demo(args.out, args.bootstrap_servers, args.produce_only, fmt=args.format)
 
 
 if __name__ == "__main__":

@@ -73,6 +73,7 @@ class BreachEvent:
     worst_score: float | None = None  # closed only
     opened_id: str | None = None  # closed only: id of the matching opened event
     reason: str | None = None  # closed only: why it closed
+    unit: str = ""  # the series' unit when its format gave one (OTLP), e.g. "s", "By/s"
     id: str = field(default="")
 
     def __post_init__(self) -> None:
@@ -131,6 +132,8 @@ class BreachEvent:
             "width": self.width,
             "routing": {"labels": dict(routed.labels), "annotations": dict(routed.annotations)},
         }
+        if self.unit:
+            d["unit"] = self.unit
         if self.type == CLOSED:
             d["duration_seconds"] = self.duration
             d["worst_score"] = _num(self.worst_score)

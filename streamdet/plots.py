@@ -74,6 +74,8 @@ def plot_series(engine: Engine, events: list[BreachEvent], out_dir: str | Path,
         ax.plot(t, cols["expected"][sel], color=EXPECTED, lw=1, ls="--", label="expected")
         ax.plot(t, cols["observed"][sel], color=OBSERVED, lw=1.1, label="observed")
         ax.set_title(key, fontsize=10, loc="left")
+        if row in engine.table.units:
+            ax.set_ylabel(engine.table.units[row], fontsize=9)
         ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(mdates.AutoDateLocator()))
         ax.grid(True, color="#e9ecef", lw=0.6)
         for side in ("top", "right"):

@@ -10,13 +10,14 @@ import sys
 import time
 from collections import Counter
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import IO
 
 import numpy as np
 
-from streamdet.codecs import TimeRules, decoder_for, format_for_path
+from streamdet.codecs import DECODERS, TimeRules, format_for_path
+from streamdet.codecs.readers import MessageReader
 from streamdet.config import Config
 from streamdet.core.engine import Engine
 from streamdet.core.points import DecodeError, PointBatch
@@ -57,17 +58,16 @@ def read_inputs(paths: Sequence[str | Path], config: Config, *, fmt: str | None 
     """Decode every file; errors name the file and line. ``now`` bounds future times."""
     rules = TimeRules(now=now, max_future=config.input.max_future)
     batches, errors, records = [], [], 0
+    readers: dict[str, MessageReader] = {}  # one per format, shared by the files in it
     for path in paths:
         p = Path(path)
         name = fmt or format_for_path(str(p))
-        data = p.read_bytes()
-        if name == "csv":
-            decoded = decoder_for(name)(data, prefix=str(p), rules=rules, metric=p.stem)
-        elif name == "influx":
-            decoded = decoder_for(name)(data, prefix=str(p), rules=rules,
-                                        precision=config.input.influx_precision)
-        else:
-            decoded = decoder_for(name)(data, prefix=str(p), rules=rules, lines=True)
+        if name not in DECODERS:
+            raise ValueError(f"unknown format {name!r}; valid: {', '.join(DECODERS)}")
+        reader = readers.get(name)
+        if reader is None:
+            reader = readers[name] = MessageReader(replace(config.input, format=name))
+        decoded = reader.decode(p.read_bytes(), prefix=str(p), rules=rules, metric=p.stem)
         batches.append(decoded.points)
         errors.extend(decoded.errors)
         records += decoded.records

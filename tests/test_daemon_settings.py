@@ -26,7 +26,7 @@ def test_defaults_and_validation():
 
 
 def test_daemon_refuses_csv_input():
-    with pytest.raises(ConfigError, match=r"input\.format: the daemon reads json or influx"):
+    with pytest.raises(ConfigError, match=r"input\.format: the daemon reads messages \(json, influx, telegraf_json"):
         parse_settings(parse_config({"input": {"format": "csv"}}))
 
 

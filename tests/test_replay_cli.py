@@ -126,7 +126,7 @@ def test_replay_needs_format_for_txt(tmp_path, capsys):
     data = tmp_path / "history.txt"
     _minutes_csv(data)
     assert main(["replay", str(data)]) == 2
-    assert "pass --format csv, --format json or --format influx" in capsys.readouterr().err
+    assert "pass --format csv, json, influx, telegraf_json, otlp_json or otlp_proto" in capsys.readouterr().err
     assert main(["replay", str(data), "--format", "csv"]) == 0
 
 

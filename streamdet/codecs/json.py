@@ -5,7 +5,8 @@ The Prometheus data-model form is accepted too: the metric name as the
 ``__name__`` label and no ``metric`` field. Label values are strings (numbers are turned
 into strings; anything else refuses the record). Well-formed objects with numeric epoch-second
 times and values take a fast path; everything else goes through the validating one, which
-gives the reason.
+gives the reason. Producers with their own key names are read through a
+:class:`~streamdet.config.JsonMapping` (``input.json``; :func:`decode_mapped_json`).
 """
 
 from __future__ import annotations
@@ -31,6 +32,7 @@ from streamdet.codecs.common import (
     parse_time,
     parse_value,
 )
+from streamdet.config import JsonMapping
 from streamdet.core.points import KeyCache, PointBatch, PointBuilder, normalise_labels, shorten
 
 _DEFAULT_RULES = TimeRules()
@@ -211,3 +213,97 @@ def decode_json_messages(values: list[bytes], position: Callable[[int], str], *,
         if d.errors:
             bad.append((i, d))
     return b.build(), bad, records
+
+
+# ------------------------------------------------------------------ mapped key names
+
+_UNIT_SCALE = {"s": 1.0, "ms": 1e3, "us": 1e6, "ns": 1e9}
+
+
+def _remap(obj: object, m: JsonMapping) -> dict:
+    """An object in a producer's own shape (``input.json``) as our shape; RecordError names the
+    producer's key when something is missing or of the wrong type."""
+    if type(obj) is not dict:
+        raise RecordError(f"expected a JSON object, got {_kind(obj)}")
+    if m.metric_key not in obj:
+        raise RecordError(f"missing field {m.metric_key!r}")
+    if m.value_key not in obj:
+        raise RecordError(f"missing field {m.value_key!r}")
+    if m.time_key not in obj:
+        raise RecordError(f"missing field {m.time_key!r}")
+    labels = obj.get(m.labels_key)
+    if labels is not None and type(labels) is not dict:
+        raise RecordError(f"{m.labels_key!r} must be an object of strings")
+    if m.label_keys:
+        lifted = {}
+        for k in m.label_keys:
+            v = obj.get(k)
+            if v is None:
+                continue
+            if not isinstance(v, str | int | float) or isinstance(v, bool):
+                raise RecordError(f"label key {shorten(k, 40)!r}: value is {_kind(v)}; label values "
+                                  "must be strings or numbers")
+            lifted[k] = v if type(v) is str else str(v)
+        labels = {**(labels or {}), **lifted}
+    t = obj[m.time_key]
+    if m.time_unit != "auto":
+        t = _scaled_time(t, _UNIT_SCALE[m.time_unit])
+    return {"metric": obj[m.metric_key], "labels": labels, "time": t, "value": obj[m.value_key]}
+
+
+def _scaled_time(raw: object, scale: float) -> object:
+    """Epoch seconds from a number (or numeric string) in an explicit unit; anything else is
+    left for :func:`parse_time` (ISO strings, or the error)."""
+    if type(raw) is str:
+        try:
+            raw = float(raw.strip())
+        except ValueError:
+            return raw
+    if type(raw) in _NUM:
+        if not _isfinite(raw):
+            raise RecordError("time is not a finite number")
+        return raw / scale
+    return raw
+
+
+def decode_mapped_json(data: bytes, mapping: JsonMapping, *, prefix: str = "",
+                       rules: TimeRules = _DEFAULT_RULES, lines: bool | None = None,
+                       builder: PointBuilder | None = None) -> Decoded:
+    """:func:`decode_json` for objects with the key names of ``mapping``.
+
+    >>> m = JsonMapping(metric_key="name", time_key="ts", time_unit="ms", label_keys=("host",))
+    >>> d = decode_mapped_json(b'{"name": "q", "host": "a", "ts": 60000, "value": 3}', m)
+    >>> d.points.keys, d.points.time.tolist()
+    (['q{host="a"}'], [60.0])
+    """
+    if mapping.is_default:
+        return decode_json(data, prefix=prefix, rules=rules, lines=lines, builder=builder)
+    own = builder is None
+    out = PointBuilder() if builder is None else builder
+    errors = ErrorCollector(prefix)
+    docs: list[tuple[str, object, bytes]] = []
+    records = 0
+    try:
+        docs.append(("record", orjson.loads(data), data))
+    except orjson.JSONDecodeError as exc:
+        if lines is False or b"\n" not in data.strip():
+            errors.add("record", f"invalid JSON ({exc})", data)
+            return finish(out, errors, 1, own=own)
+        for lineno, chunk in enumerate(data.splitlines(), start=1):
+            if not chunk.strip():
+                continue
+            try:
+                docs.append((f"line {lineno}", orjson.loads(chunk), chunk))
+            except orjson.JSONDecodeError as exc:
+                records += 1
+                errors.add(f"line {lineno}", f"invalid JSON ({exc})", chunk)
+    for where, doc, chunk in docs:
+        items = doc if type(doc) is list else (doc,)
+        for i, item in enumerate(items, start=1):
+            records += 1
+            try:
+                _add_object(_remap(item, mapping), out, rules, len(chunk))
+            except RecordError as exc:
+                item_where = f"{where} item {i}" if type(doc) is list else where
+                errors.add(item_where, str(exc), orjson.dumps(item) if _dumpable(item) else chunk)
+    return finish(out, errors, records, own=own)

@@ -58,7 +58,7 @@ class Announcer:
                     step_start=float(w.start[i]), step_end=float(w.start[i] + step),
                     observed=float(w.observed[i]), expected=float(a.centre[i]),
                     lower=float(a.lower[i]), upper=float(a.upper[i]), score=float(a.score[i]),
-                    width=rule.width, weights=weights)
+                    width=rule.width, weights=weights, unit=eng.table.units.get(row, ""))
 
     def opened(self, row: int, i: int, w: Wave) -> BreachEvent:
         b = self.engine.breaches
@@ -82,7 +82,7 @@ class Announcer:
         base = dict(series=eng.table.keys[row], metric=metric, labels=dict(labels), rule=rule.name,
                     step_start=float(b.last_out[row]) - step, step_end=float(b.last_out[row]),
                     observed=math.nan, expected=math.nan, lower=math.nan, upper=math.nan,
-                    score=math.nan, width=rule.width, weights={})
+                    score=math.nan, width=rule.width, weights={}, unit=eng.table.units.get(row, ""))
         event = self._closed(row, "series went quiet", base)
         b.status[row] = 0
         return event

@@ -23,6 +23,7 @@ class ColumnState:
     # bucket-major (Fortran order), so a wave's bucket is one contiguous run of memory instead
     # of one cache line per row.
     BY_BUCKET: ClassVar[frozenset[str]] = frozenset()
+    OPTIONAL: ClassVar[frozenset[str]] = frozenset()  # columns an older snapshot may lack (reset)
     prefix: str = ""
 
     def __init__(self, capacity: int = 0) -> None:
@@ -63,8 +64,11 @@ class ColumnState:
     def load(self, arrays: dict[str, np.ndarray], n: int) -> None:
         """Inverse of :meth:`state`; a missing or misshapen array raises ValueError naming it."""
         self.grow(max(n, 1))
-        for name, (dtype, tail, _fill) in self.columns().items():
+        for name, (dtype, tail, fill) in self.columns().items():
             key = f"{self.prefix}.{name}"
+            if key not in arrays and name in self.OPTIONAL:
+                getattr(self, name)[:n] = fill
+                continue
             if key not in arrays:
                 raise ValueError(f"snapshot lacks array {key!r}")
             arr = arrays[key]

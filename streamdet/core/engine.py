@@ -225,8 +225,12 @@ class Engine:
             t = np.concatenate([rt, t])
             v = np.concatenate([rv, v])
             seq = np.concatenate([np.arange(rr.shape[0]) - rr.shape[0], seq])
-        if self.any_counter:
+        if self.any_counter or tab.any_counter:
+            # --- formats: a series is a counter by its rule or by its format (OTLP cumulative sums)
             counter = self.rule_counter[tab.rule[rows]]
+            if tab.any_counter:
+                counter = counter | (tab.counter[rows] != 0)
+            # --- end formats
             if counter.any():
                 rows, t, v, seq = self._counters_to_rates(rows, t, v, seq, counter)
                 reorder = True
@@ -505,6 +509,7 @@ class Engine:
             "next_eviction": None if math.isinf(self.next_eviction) else self.next_eviction,
             "counters": dict(self.counters),
             "pending": {str(k): v for k, v in self.pending.items()},
+            "units": {str(k): v for k, v in self.table.units.items()},  # formats: declared units
         }
         return framing.pack(SNAPSHOT_MAGIC, SNAPSHOT_VERSION, header, body)
 
@@ -545,6 +550,7 @@ class Engine:
                              else float(header["next_eviction"]))
         eng.counters = Counter(header["counters"])
         eng.pending = {int(k): [tuple(p) for p in v] for k, v in header["pending"].items()}
+        tab.units = {int(k): str(v) for k, v in header.get("units", {}).items()}  # formats
         if gone.shape[0]:
             tab.release(gone)
             eng.counters["series_dropped_rule_removed"] += gone.shape[0]

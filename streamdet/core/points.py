@@ -7,12 +7,13 @@ labels of every key it mentions, so the engine can register new series.
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Mapping
+from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field
 
 import numpy as np
 
 Labels = tuple[tuple[str, str], ...]
+COUNTER = "counter"
 CACHE_LIMIT = 500_000  # raw record identities remembered by a shared PointBuilder cache
 
 
@@ -56,18 +57,33 @@ def shorten(record: bytes | str, limit: int = 160) -> str:
     return text if len(text) <= limit else text[: limit - 3] + "..."
 
 
+@dataclass(frozen=True, slots=True, kw_only=True)
+class SeriesNote:
+    """What a format says about a series beyond its points: its kind and unit.
+
+    ``kind="counter"`` marks a cumulative, monotonic series (the engine turns it into a
+    per-second rate, whatever the rule's ``kind``); ``unit`` is kept with the series and
+    quoted in its events and plots. Decoders of formats that carry neither set none.
+    """
+
+    kind: str = "gauge"
+    unit: str = ""
+
+
 @dataclass(frozen=True, slots=True)
 class PointBatch:
     """Points as parallel columns.
 
     ``keys[i]``, ``time[i]`` (epoch seconds, float64) and ``value[i]`` describe
-    point ``i``; ``series`` maps every key in ``keys`` to ``(metric, labels)``.
+    point ``i``; ``series`` maps every key in ``keys`` to ``(metric, labels)``; ``notes``
+    holds a :class:`SeriesNote` for the keys whose format declared a kind or a unit.
     """
 
     keys: list[str]
     time: np.ndarray
     value: np.ndarray
     series: dict[str, tuple[str, Labels]] = field(default_factory=dict)
+    notes: dict[str, SeriesNote] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
         n = len(self.keys)
@@ -90,22 +106,27 @@ class PointBatch:
         if not batches:
             return cls.empty()
         series: dict[str, tuple[str, Labels]] = {}
+        notes: dict[str, SeriesNote] = {}
         keys: list[str] = []
         for b in batches:
             series.update(b.series)
+            notes.update(b.notes)
             keys.extend(b.keys)
         return cls(
             keys,
             np.concatenate([b.time for b in batches]),
             np.concatenate([b.value for b in batches]),
             series,
+            notes,
         )
 
     def take(self, index: np.ndarray) -> PointBatch:
         """The points at ``index`` (an integer array), in that order."""
         keys = [self.keys[i] for i in index.tolist()]
+        present = set(keys)
+        notes = {k: self.notes[k] for k in present if k in self.notes} if self.notes else {}
         return PointBatch(
-            keys, self.time[index], self.value[index], {k: self.series[k] for k in set(keys)}
+            keys, self.time[index], self.value[index], {k: self.series[k] for k in present}, notes
         )
 
 
@@ -113,16 +134,18 @@ class KeyCache:
     """Raw record identity -> series key, and key -> (metric, labels), kept by a long-running
     reader across batches so a series seen before costs one dict lookup. Bounded."""
 
-    __slots__ = ("meta", "raw")
+    __slots__ = ("meta", "notes", "raw")
 
     def __init__(self) -> None:
         self.raw: dict[tuple, str] = {}
         self.meta: dict[str, tuple[str, Labels]] = {}
+        self.notes: dict[str, SeriesNote] = {}
 
     def trim(self) -> None:
         if len(self.raw) > CACHE_LIMIT:
             self.raw.clear()
             self.meta.clear()
+            self.notes.clear()
 
 
 class PointBuilder:
@@ -132,7 +155,7 @@ class PointBuilder:
     series than the batch holds, which is all the engine needs).
     """
 
-    __slots__ = ("_cache", "_raw", "keys", "series", "times", "values")
+    __slots__ = ("_cache", "_raw", "keys", "notes", "series", "times", "values")
 
     def __init__(self, cache: KeyCache | None = None) -> None:
         if cache is None:
@@ -142,6 +165,7 @@ class PointBuilder:
         self.times: list[float] = []
         self.values: list[float] = []
         self.series: dict[str, tuple[str, Labels]] = cache.meta
+        self.notes: dict[str, SeriesNote] = cache.notes
         self._cache: dict[tuple[str, Labels], str] = {}
         self._raw = cache.raw
 
@@ -176,10 +200,23 @@ class PointBuilder:
         self.times.append(time)
         self.values.append(value)
 
+    def add_checked(self, metric: str, labels: Labels, time: float, value: float,
+                    check: Callable[[str, Labels], None]) -> None:
+        """:meth:`add`, running ``check(metric, labels)`` first (it may raise) only for a series
+        this builder has not added before."""
+        if (metric, labels) not in self._cache:
+            check(metric, labels)
+        self.add(metric, labels, time, value)
+
+    def note(self, note: SeriesNote) -> None:
+        """Attach ``note`` to the series of the point added last."""
+        self.notes[self.keys[-1]] = note
+
     def build(self) -> PointBatch:
         return PointBatch(
             self.keys,
             np.asarray(self.times, dtype=np.float64),
             np.asarray(self.values, dtype=np.float64),
             self.series,
+            self.notes,
         )

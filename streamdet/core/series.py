@@ -1,8 +1,10 @@
 """The series table: series key -> row, the rule each series follows, caps and idle eviction.
 
 Rows are reused after eviction; every other part of the engine keeps its state in arrays
-indexed by these rows. Keys of series that no rule selects are remembered (bounded) so the
-rule globs are not re-run for every point.
+indexed by these rows. A series whose format declared it a counter (OTLP cumulative sums) is
+marked in ``counter``; units a format gave are kept in ``units`` (row -> unit, sparse).
+Keys of series that no rule selects are remembered (bounded) so the rule globs are not
+re-run for every point.
 """
 
 from __future__ import annotations
@@ -14,7 +16,7 @@ import numpy as np
 
 from streamdet.config import Config
 from streamdet.core.columns import ColumnSpec, ColumnState
-from streamdet.core.points import Labels, PointBatch
+from streamdet.core.points import COUNTER, Labels, PointBatch
 
 UNMATCHED_MEMORY = 100_000
 
@@ -30,7 +32,9 @@ class SeriesTable(ColumnState):
         "rearm": ("f8", (), 0.0),  # seconds
         "first": ("f8", (), np.nan),  # start of the first closed step
         "last_seen": ("f8", (), -np.inf),  # latest point time
+        "counter": ("i1", (), 0),  # 1: the format declared a counter (rates whatever the rule)
     }
+    OPTIONAL = frozenset({"counter"})  # absent from snapshots taken before it existed
 
     def __init__(self, config: Config, capacity: int = 1024) -> None:
         super().__init__(capacity)
@@ -40,6 +44,8 @@ class SeriesTable(ColumnState):
         self.meta: list[tuple[str, Labels] | None] = []
         self.free: list[int] = []
         self.unmatched: set[str] = set()
+        self.units: dict[int, str] = {}
+        self.any_counter = False  # some row was declared a counter by its format
 
     @property
     def n(self) -> int:
@@ -76,7 +82,26 @@ class SeriesTable(ColumnState):
                 rows[i] = row
             if created:
                 on_new(np.asarray(created, dtype=np.int64))
+                if batch.notes:
+                    self._note(created, batch)
         return rows, no_rule, over_cap
+
+    def _note(self, created: list[int], batch: PointBatch) -> None:
+        """Kind and unit the format declared for new rows (after ``on_new`` reset them)."""
+        notes = batch.notes
+        for row in created:
+            note = notes.get(self.keys[row])  # type: ignore[arg-type]
+            if note is None:
+                continue
+            if note.kind == COUNTER:
+                self.counter[row] = 1
+                self.any_counter = True
+            if note.unit:
+                self.units[row] = note.unit
+
+    def load(self, arrays: dict[str, np.ndarray], n: int) -> None:
+        super().load(arrays, n)
+        self.any_counter = bool(self.counter[:n].any())
 
     def _create(self, key: str, meta: tuple[str, Labels], created: list[int]) -> int:
         metric, labels = meta
@@ -113,7 +138,9 @@ class SeriesTable(ColumnState):
 
     def release(self, rows: np.ndarray) -> None:
         self.rule[rows] = -1
+        self.counter[rows] = 0
         for row in rows.tolist():
+            self.units.pop(row, None)
             key = self.keys[row]
             if key is not None:
                 del self.index[key]

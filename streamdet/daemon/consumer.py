@@ -26,11 +26,11 @@ from confluent_kafka import Consumer, KafkaError, KafkaException, Message, Topic
 
 from streamdet.alerting.alertmanager import alertmanager_sink
 from streamdet.alerting.routing import Encoder
-from streamdet.codecs import TimeRules, decode_influx
-from streamdet.codecs.json import decode_json_messages
+from streamdet.codecs import TimeRules
+from streamdet.codecs.readers import MessageReader
 from streamdet.config import Config
 from streamdet.core.engine import Engine, SnapshotError
-from streamdet.core.points import DecodeError, KeyCache, PointBatch, PointBuilder, shorten
+from streamdet.core.points import DecodeError, KeyCache, PointBatch, shorten
 from streamdet.daemon.health import HealthServer, Metrics, reason_code
 from streamdet.daemon.logs import RateLimitedLog
 from streamdet.daemon.producer import Sink
@@ -55,6 +55,7 @@ class PartitionState:
     dirty: bool = False
     counters: Counter[str] = field(default_factory=Counter)
     key_cache: KeyCache = field(default_factory=KeyCache)  # raw record identity -> series key
+    reader: MessageReader | None = None  # formats: the topic's decoder, made on first use
 
 
 def split_groups(engines: list[Engine]) -> int:
@@ -239,18 +240,14 @@ class Daemon:
     def _decode_batch(self, key: TP, items: list[Message], part: PartitionState,
                       rules: TimeRules) -> PointBatch:
         topic, partition = key
-        if self.config.input.format == "influx":
-            builder = PointBuilder(part.key_cache)
-            for msg in items:
-                d = decode_influx(msg.value() or b"", prefix=f"{topic}/{partition}@{msg.offset()}",
-                                  rules=rules, precision=self.config.input.influx_precision, builder=builder)
-                self.metrics.records_in.inc(d.records)
-                if d.errors:
-                    self._dead_letter(msg, d.errors)
-            return builder.build()
-        batch, bad, records = decode_json_messages(
+        # --- formats: each topic is read in its own format (kafka.input_topics[].format)
+        if part.reader is None:
+            part.reader = MessageReader(self.settings.topic_inputs.get(topic, self.config.input),
+                                        cache=part.key_cache)
+        batch, bad, records = part.reader.decode_messages(
             [m.value() or b"" for m in items], lambda i: f"{topic}/{partition}@{items[i].offset()}",
-            rules=rules, cache=part.key_cache)
+            rules=rules)
+        # --- end formats
         self.metrics.records_in.inc(records)
         for i, d in bad:
             self._dead_letter(items[i], d.errors)

@@ -24,7 +24,7 @@ from typing import Any
 from confluent_kafka import Consumer, KafkaException, Producer
 
 from streamdet.alerting.alertmanager import AlertmanagerSettings, parse_alertmanager
-from streamdet.config import Config, ConfigError, _Section, read_config_file
+from streamdet.config import Config, ConfigError, InputConfig, _Section, parse_input, read_config_file
 
 # Property names whose values are secrets (issue 7: password, secret, key, token and
 # sasl.oauthbearer.config, which carries a client secret); credential, .pem and jaas besides.
@@ -40,6 +40,7 @@ class DaemonSettings:
     bootstrap_servers: str = "127.0.0.1:9092"
     group_id: str = "streamdet"
     input_topics: tuple[str, ...] = ("metrics",)
+    topic_inputs: Mapping[str, InputConfig] = field(default_factory=dict)  # per-topic format
     output_topic: str | None = "streamdet-events"
     dead_letter_topic: str | None = "streamdet-dead-letters"
     batch_size: int = 20000
@@ -119,12 +120,7 @@ def parse_settings(config: Config) -> DaemonSettings:
     problems: list[str] = []
     d = DaemonSettings()
     k = _Section(config.extra.get("kafka"), "kafka", problems)
-    topics = k.get("input_topics", list(d.input_topics))
-    if isinstance(topics, str):
-        topics = [topics]
-    if not isinstance(topics, list) or not topics or not all(isinstance(t, str) and t for t in topics):
-        k.bad("input_topics", "expected a non-empty list of topic names")
-        topics = list(d.input_topics)
+    topics, topic_inputs = _input_topics(k, config, d)
 
     def topic_or_none(name: str, default: str | None) -> str | None:
         raw = k.get(name, default)
@@ -139,6 +135,7 @@ def parse_settings(config: Config) -> DaemonSettings:
         bootstrap_servers=k.text("bootstrap_servers", d.bootstrap_servers),
         group_id=k.text("group_id", d.group_id),
         input_topics=tuple(topics),
+        topic_inputs=topic_inputs,
         output_topic=topic_or_none("output_topic", d.output_topic),
         dead_letter_topic=topic_or_none("dead_letter_topic", d.dead_letter_topic),
         batch_size=k.number("batch_size", d.batch_size, lo=1, integer=True),
@@ -174,12 +171,49 @@ def parse_settings(config: Config) -> DaemonSettings:
     kw["log_level"] = lg.choice("level", d.log_level, ("debug", "info", "warning", "error"))
     lg.done()
     if config.input.format == "csv":
-        problems.append("input.format: the daemon reads json or influx messages; csv is for replay")
+        problems.append("input.format: the daemon reads messages (json, influx, telegraf_json, "
+                        "otlp_proto, otlp_json); csv is for replay")
     if not problems:
         problems.extend(librdkafka_problems(DaemonSettings(**kw)))
     if problems:
         raise ConfigError(problems)
     return DaemonSettings(**kw)
+
+
+def _input_topics(k: _Section, config: Config, d: DaemonSettings
+                  ) -> tuple[list[str], dict[str, InputConfig]]:
+    """``kafka.input_topics``: topic names, or ``{topic: name, format: ..., ...}`` entries whose
+    other keys override the ``input`` section for that topic."""
+    raw = k.get("input_topics", list(d.input_topics))
+    if isinstance(raw, str):
+        raw = [raw]
+    if not isinstance(raw, list) or not raw:
+        k.bad("input_topics", "expected a non-empty list of topic names or {topic: ..., format: ...}")
+        return list(d.input_topics), {}
+    topics: list[str] = []
+    inputs: dict[str, InputConfig] = {}
+    for i, entry in enumerate(raw):
+        path = f"{k.key('input_topics')}[{i}]"
+        if isinstance(entry, str) and entry:
+            topics.append(entry)
+            continue
+        if not isinstance(entry, Mapping):
+            k.problems.append(f"{path}: expected a topic name or a mapping with 'topic', got {entry!r}")
+            continue
+        name = entry.get("topic")
+        if not isinstance(name, str) or not name:
+            k.problems.append(f"{path}.topic: expected a topic name, got {name!r}")
+            continue
+        rest = _Section({key: v for key, v in entry.items() if key != "topic"}, path, k.problems)
+        inp = parse_input(rest, config.input)
+        if inp.format == "csv":
+            k.problems.append(f"{path}.format: csv is for replay; a topic carries json, influx, "
+                              "telegraf_json, otlp_proto or otlp_json")
+        topics.append(name)
+        inputs[name] = inp
+    for dup in sorted({t for t in topics if topics.count(t) > 1}):
+        k.problems.append(f"{k.key('input_topics')}: topic {dup!r} is listed more than once")
+    return topics or list(d.input_topics), inputs
 
 
 def _unusable_directory(path: str) -> str | None:
