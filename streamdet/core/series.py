@@ -1,8 +1,9 @@
 """The series table: series key -> row, the rule each series follows, caps and idle eviction.
 
 Rows are reused after eviction; every other part of the engine keeps its state in arrays
-indexed by these rows. Keys of series that no rule selects are remembered (bounded) so the
-rule globs are not re-run for every point.
+indexed by these rows. Keys of series that no rule selects are remembered (bounded: at most
+``UNMATCHED_MEMORY`` keys and ``UNMATCHED_CHARS`` characters, then forgotten all at once) so the
+rule globs are not re-run for every point. Keys refused for ``max_series`` are not remembered.
 """
 
 from __future__ import annotations
@@ -17,6 +18,7 @@ from streamdet.core.columns import ColumnSpec, ColumnState
 from streamdet.core.points import Labels, PointBatch
 
 UNMATCHED_MEMORY = 100_000
+UNMATCHED_CHARS = 8_000_000
 
 
 class SeriesTable(ColumnState):
@@ -40,6 +42,7 @@ class SeriesTable(ColumnState):
         self.meta: list[tuple[str, Labels] | None] = []
         self.free: list[int] = []
         self.unmatched: set[str] = set()
+        self.unmatched_chars = 0
 
     @property
     def n(self) -> int:
@@ -82,9 +85,11 @@ class SeriesTable(ColumnState):
         metric, labels = meta
         rule = self.config.rule_for(metric, dict(labels))
         if rule is None:
-            if len(self.unmatched) >= UNMATCHED_MEMORY:
+            if len(self.unmatched) >= UNMATCHED_MEMORY or self.unmatched_chars >= UNMATCHED_CHARS:
                 self.unmatched.clear()
+                self.unmatched_chars = 0
             self.unmatched.add(key)
+            self.unmatched_chars += len(key)
             return -1
         if len(self.index) >= self.config.series.max_series:
             return -2
@@ -102,6 +107,10 @@ class SeriesTable(ColumnState):
         created.append(row)
         self.rule[row] = rule
         return row
+
+    def knows(self, key: str) -> bool:
+        """Whether ``key`` is a series with state here (readers keep cache entries only for these)."""
+        return key in self.index
 
     def live(self) -> np.ndarray:
         """Mask of rows that hold a series (freed rows have no rule)."""

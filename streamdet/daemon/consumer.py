@@ -28,7 +28,7 @@ from streamdet.codecs import TimeRules, decode_influx
 from streamdet.codecs.json import decode_json_messages
 from streamdet.config import Config
 from streamdet.core.engine import Engine, SnapshotError
-from streamdet.core.points import DecodeError, KeyCache, PointBatch, PointBuilder, shorten
+from streamdet.core.points import DecodeError, KeyCache, PointBatch, PointBuilder, cache_limit, shorten
 from streamdet.daemon.health import HealthServer, Metrics, reason_code
 from streamdet.daemon.logs import RateLimitedLog
 from streamdet.daemon.producer import Sink
@@ -52,6 +52,10 @@ class PartitionState:
     dirty: bool = False
     counters: Counter[str] = field(default_factory=Counter)
     key_cache: KeyCache = field(default_factory=KeyCache)  # raw record identity -> series key
+
+    def __post_init__(self) -> None:
+        # Bounded by the engine's series cap; entries of refused series are settled after ingest.
+        self.key_cache.limit = cache_limit(self.engine.config.series.max_series)
 
 
 class Daemon:
@@ -259,6 +263,7 @@ class Daemon:
             if part is None:  # revoked while the batch was in flight
                 continue
             events = part.engine.ingest(self._decode(key, items, part, rules))
+            part.key_cache.settle(part.engine.table.knows)
             self._count(part)
             self.sink.send(events, time.monotonic())
             part.next_offset = items[-1].offset() + 1
