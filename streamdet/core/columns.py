@@ -54,16 +54,25 @@ class ColumnState:
         return {f"{self.prefix}.{name}": getattr(self, name)[:n].copy() for name in self.columns()}
 
     def load(self, arrays: dict[str, np.ndarray], n: int) -> None:
-        """Inverse of :meth:`state`; a missing or misshapen array raises ValueError naming it."""
-        self.grow(max(n, 1))
-        for name, (dtype, tail, _fill) in self.columns().items():
+        """Inverse of :meth:`state`; a missing or misshapen array raises ValueError naming it.
+
+        Each column is allocated once at ``n`` rows (or the current capacity, if larger) and
+        filled from the saved array: no fill-then-overwrite pass over restored rows."""
+        spec = self.columns()
+        for name, (_dtype, tail, _fill) in spec.items():
             key = f"{self.prefix}.{name}"
             if key not in arrays:
                 raise ValueError(f"snapshot lacks array {key!r}")
-            arr = arrays[key]
-            if arr.shape != (n, *tail):
-                raise ValueError(f"snapshot array {key!r} has shape {arr.shape}, expected {(n, *tail)}")
-            getattr(self, name)[:n] = arr.astype(dtype, copy=False)
+            if arrays[key].shape != (n, *tail):
+                raise ValueError(f"snapshot array {key!r} has shape {arrays[key].shape}, "
+                                 f"expected {(n, *tail)}")
+        capacity = max(n, 1, self.capacity)
+        for name, (dtype, tail, fill) in spec.items():
+            new = np.empty((capacity, *tail), dtype=dtype)
+            new[:n] = arrays[f"{self.prefix}.{name}"]
+            new[n:] = fill
+            setattr(self, name, new)
+        self.capacity = capacity
 
     def bytes_per_row(self) -> int:
         total = 0
