@@ -27,7 +27,7 @@ from confluent_kafka import Consumer, KafkaError, KafkaException, Message, Topic
 from streamdet.codecs import TimeRules, decode_influx
 from streamdet.codecs.json import decode_json_messages
 from streamdet.config import Config
-from streamdet.core.engine import Engine, SnapshotError
+from streamdet.core.engine import Engine, SnapshotError, StateChangeError
 from streamdet.core.points import DecodeError, KeyCache, PointBatch, PointBuilder, cache_limit, shorten
 from streamdet.daemon.health import HealthServer, Metrics, reason_code
 from streamdet.daemon.logs import RateLimitedLog
@@ -172,7 +172,11 @@ class Daemon:
                 log.info("assigned %s:%d with no checkpoint", *key)
                 continue
             try:
-                engine = Engine.restore(self.config, ckpt.snapshot)
+                engine = Engine.restore(self.config, ckpt.snapshot,
+                                        on_rule_change=self.settings.on_rule_change)
+            except StateChangeError as exc:
+                path = getattr(self.store, "path", lambda *_: "the state store")(*key)
+                raise StartupError(f"{path}: {exc}") from None
             except SnapshotError as exc:
                 path = getattr(self.store, "path", lambda *_: "the state store")(*key)
                 raise StartupError(f"{path}: cannot restore ({exc}); start it fresh with "
@@ -183,7 +187,23 @@ class Daemon:
             tp.offset = ckpt.next_offset
             log.info("assigned %s:%d restored at offset %d (%d series)", *key, ckpt.next_offset,
                      engine.stats()["series_active"])
+            self._report_restore(key, engine)
         consumer.incremental_assign(partitions)
+
+    def _report_restore(self, key: TP, engine: Engine) -> None:
+        """Log and count what the restore kept, dropped and reset; send the closings it decided."""
+        report = engine.restore_report
+        if report is None:
+            return
+        m = self.metrics.restored_series
+        m.labels("kept").inc(report.series_kept)
+        m.labels("dropped").inc(report.series_dropped)
+        m.labels("relearning").inc(report.series_relearning)
+        for line in report.lines():
+            log.warning("restored %s:%d: %s", *key, line)
+        if engine.restore_events and self.sink is not None:
+            self.sink.send(engine.restore_events, time.monotonic())
+            engine.restore_events = []
 
     def _on_revoke(self, consumer: Consumer, partitions: list[TopicPartition]) -> None:
         keys = [(tp.topic, tp.partition) for tp in partitions]
