@@ -597,11 +597,12 @@ class Engine:
                 + ". Restore the old rule names and steps, or accept the loss with "
                 "`state.on_rule_change: drop` (or `streamdet run --accept-state-changes`)")
         events = []
-        for _rule, rows in reset:
+        for rule, rows in reset:
             events.extend(self.announce.closed_idle(row, "the rule's step or kind changed; the "
                                                    "series learns again")
                           for row in rows[self.breaches.status[rows] != 0].tolist())
             self._relearn(rows)
+            self._set_step(rows, rule, rule.step)
         if gone_rows:
             gone = np.concatenate(gone_rows)
             for row in gone.tolist():

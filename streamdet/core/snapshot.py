@@ -70,7 +70,7 @@ def copy_columns(arrays: dict[str, np.ndarray], n: int) -> tuple[np.ndarray, dic
         shape = (n, *arr.shape[1:])
         layout[name] = (arr.dtype.str, shape, offset)
         offset = _aligned(offset + arr.dtype.itemsize * int(np.prod(shape, dtype=np.int64)))
-    buf = np.empty(offset, np.uint8)
+    buf = np.zeros(offset, np.uint8)  # zeros: padding bytes are deterministic
     for name, arr in arrays.items():
         _dtype, shape, off = layout[name]
         size = arr.dtype.itemsize * int(np.prod(shape, dtype=np.int64))
