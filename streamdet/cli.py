@@ -23,7 +23,7 @@ def cmd_check(args: argparse.Namespace) -> int:
     from streamdet.daemon.settings import load_with_environment
 
     try:
-        cfg, _settings = load_with_environment(args.config)
+        cfg, settings = load_with_environment(args.config)
     except ConfigError as exc:
         print(f"{args.config}: {len(exc.problems)} problem(s)", file=sys.stderr)
         for p in exc.problems:
@@ -32,7 +32,41 @@ def cmd_check(args: argparse.Namespace) -> int:
     env = sorted(k for k in os.environ if k.startswith("STREAMDET_"))
     note = f"; with {', '.join(env)} from the environment" if env else ""
     print(f"{args.config}: OK ({len(cfg.rules)} rule(s): {', '.join(r.name for r in cfg.rules)}{note})")
-    return 0
+    return _check_state(cfg, settings, args.state) if args.state else 0
+
+
+def _check_state(cfg: Config, settings, directory: str) -> int:
+    """Restore every checkpoint in ``directory`` against ``cfg`` and print what ``run`` would do
+    with it (the restore report); 2 if ``run`` would refuse one."""
+    from streamdet.core.engine import Engine, SnapshotError
+    from streamdet.daemon.state_store import LocalStateStore, StateError
+
+    files = sorted(Path(directory).glob("*.ckpt"))
+    if not files:
+        print(f"{directory}: no checkpoints")
+        return 0
+    store = LocalStateStore(directory)
+    code = 0
+    for path in files:
+        topic, _, partition = path.stem.rpartition("-")
+        try:
+            ckpt = store.load(topic, int(partition))
+            engine = Engine.restore(cfg, ckpt.snapshot) if ckpt else None
+        except (ValueError, SnapshotError, StateError) as exc:
+            print(f"{path}: cannot restore: {exc}", file=sys.stderr)
+            code = 2
+            continue
+        if engine is None or engine.restore_report is None:
+            continue
+        report = engine.restore_report
+        print(f"{path}: {report.series_kept} series kept")
+        for line in report.lines():
+            print(f"  {line}")
+        if report.changes and settings.on_rule_change == "error":
+            print("  run would refuse this checkpoint (state.on_rule_change: error); accept with "
+                  "--accept-state-changes", file=sys.stderr)
+            code = 2
+    return code
 
 
 # `streamdet replay` exit codes (documented in the README).
@@ -309,6 +343,8 @@ def cmd_run(args: argparse.Namespace) -> int:
         print(str(exc), file=sys.stderr)
         return 2
     setup_logging(args.log_format or settings.log_format, settings.log_level)
+    if args.accept_state_changes:
+        settings = dataclasses.replace(settings, on_rule_change="drop")
     daemon = Daemon(cfg, settings, metrics=Metrics(CollectorRegistry()), events_file=args.events_file,
                     fresh_partitions=args.fresh_partition or ())
     return daemon.run()
@@ -336,6 +372,9 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--events-file", help="write events as JSON lines here instead of the output topic")
     r.add_argument("--fresh-partition", action="append", type=_partition, metavar="TOPIC:PARTITION",
                    help="discard that partition's checkpoint and start it fresh (repeatable)")
+    r.add_argument("--accept-state-changes", action="store_true",
+                   help="restore checkpoints even if renamed or removed rules drop series, or a "
+                        "changed step or kind resets their learning (state.on_rule_change: drop)")
     r.add_argument("--log-format", choices=("text", "json"), help="log format (default: logging.format)")
     r.set_defaults(func=cmd_run)
     d = sub.add_parser("demo", help="a fictional shop's metrics through a local broker and the daemon")
@@ -369,6 +408,8 @@ def build_parser() -> argparse.ArgumentParser:
     t.set_defaults(func=tail_mod.main)
     c = sub.add_parser("check", help="validate a config file (exit code 2 on errors)")
     c.add_argument("config")
+    c.add_argument("--state", metavar="DIR", help="also restore the checkpoints in DIR against the "
+                   "config and report series a changed rule would drop or reset")
     c.set_defaults(func=cmd_check)
     return parser
 

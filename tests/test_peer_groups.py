@@ -159,11 +159,9 @@ def test_rules_without_peers_have_no_peer_state():
 
 
 def _arrays(snap: bytes) -> list[str]:
-    from streamdet.core import framing
-    from streamdet.core.engine import SNAPSHOT_MAGIC, SNAPSHOT_VERSION
-    _, body = framing.unpack(snap, SNAPSHOT_MAGIC, SNAPSHOT_VERSION, "snapshot")
-    with np.load(io.BytesIO(body)) as z:
-        return list(z.files)
+    from streamdet.core.snapshot import decode_snapshot
+
+    return list(decode_snapshot(snap).arrays)
 
 
 def test_snapshot_restore_mid_stream_gives_the_same_events():

@@ -71,7 +71,7 @@ class Announcer:
     def closed(self, row: int, i: int, w: Wave, reason: str) -> BreachEvent:
         return self._closed(row, reason, self._base(row, i, w))
 
-    def closed_idle(self, row: int) -> BreachEvent:
+    def closed_idle(self, row: int, reason: str = "series went quiet") -> BreachEvent:
         """Closed event for a series evicted while its breach was open (no step of its own:
         the last unusual step is reported)."""
         eng = self.engine
@@ -83,7 +83,7 @@ class Announcer:
                     step_start=float(b.last_out[row]) - step, step_end=float(b.last_out[row]),
                     observed=math.nan, expected=math.nan, lower=math.nan, upper=math.nan,
                     score=math.nan, width=rule.width, weights={}, unit=eng.table.units.get(row, ""))
-        event = self._closed(row, "series went quiet", base)
+        event = self._closed(row, reason, base)
         b.status[row] = 0
         return event
 

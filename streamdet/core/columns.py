@@ -57,24 +57,42 @@ class ColumnState:
         for name, (_dtype, _tail, fill) in self.columns().items():
             getattr(self, name)[rows] = fill
 
+    def state_views(self, n: int) -> dict[str, np.ndarray]:
+        """What a snapshot saves, keyed ``<prefix>.<column>``: views of the first ``n`` rows of
+        every column (the snapshot copies them). Parts with more to save override this."""
+        return {f"{self.prefix}.{name}": getattr(self, name)[:n] for name in self.columns()}
+
     def state(self, n: int) -> dict[str, np.ndarray]:
         """The first ``n`` rows of every column, keyed ``<prefix>.<column>``."""
         return {f"{self.prefix}.{name}": getattr(self, name)[:n].copy() for name in self.columns()}
 
     def load(self, arrays: dict[str, np.ndarray], n: int) -> None:
-        """Inverse of :meth:`state`; a missing or misshapen array raises ValueError naming it."""
-        self.grow(max(n, 1))
-        for name, (dtype, tail, fill) in self.columns().items():
+        """Inverse of :meth:`state`; a missing or misshapen array raises ValueError naming it
+        (columns in ``OPTIONAL`` may be missing: an older snapshot; they take the fill value).
+
+        Each column is allocated once at ``n`` rows (or the current capacity, if larger) and
+        filled from the saved array: no fill-then-overwrite pass over restored rows."""
+        spec = self.columns()
+        for name, (_dtype, tail, _fill) in spec.items():
             key = f"{self.prefix}.{name}"
-            if key not in arrays and name in self.OPTIONAL:
-                getattr(self, name)[:n] = fill
-                continue
             if key not in arrays:
+                if name in self.OPTIONAL:
+                    continue
                 raise ValueError(f"snapshot lacks array {key!r}")
-            arr = arrays[key]
-            if arr.shape != (n, *tail):
-                raise ValueError(f"snapshot array {key!r} has shape {arr.shape}, expected {(n, *tail)}")
-            getattr(self, name)[:n] = arr.astype(dtype, copy=False)
+            if arrays[key].shape != (n, *tail):
+                raise ValueError(f"snapshot array {key!r} has shape {arrays[key].shape}, "
+                                 f"expected {(n, *tail)}")
+        capacity = max(n, 1, self.capacity)
+        for name, (dtype, tail, fill) in spec.items():
+            key = f"{self.prefix}.{name}"
+            new = np.empty((capacity, *tail), dtype=dtype, order=self._order(name))
+            if key in arrays:
+                new[:n] = arrays[key]
+                new[n:] = fill
+            else:
+                new[:] = fill
+            setattr(self, name, new)
+        self.capacity = capacity
 
     def bytes_per_row(self) -> int:
         total = 0

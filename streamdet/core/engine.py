@@ -18,7 +18,6 @@ step closed at once (a *wave*), returning the breach events those steps decided.
 
 from __future__ import annotations
 
-import io
 import math
 import zoneinfo
 from collections import Counter
@@ -28,7 +27,7 @@ from datetime import datetime
 import numpy as np
 
 from streamdet.config import Config, Rule
-from streamdet.core import breach_events, framing, peer_groups
+from streamdet.core import breach_events, peer_groups
 from streamdet.core.columns import ColumnState, row_numbers
 from streamdet.core.confirm import BreachState
 from streamdet.core.evidence import EvidenceWindow, combined_surprise, critical_statistic
@@ -38,11 +37,20 @@ from streamdet.core.judge import TemporalJudge
 from streamdet.core.points import PointBatch
 from streamdet.core.relevel import RunTracker
 from streamdet.core.series import SeriesTable
+from streamdet.core.snapshot import (  # noqa: F401 (SNAPSHOT_VERSION, SnapshotError: re-exported)
+    SNAPSHOT_VERSION,
+    RestoreReport,
+    RuleChange,
+    SnapshotError,
+    SnapshotParts,
+    StateChangeError,
+    copy_columns,
+    decode_snapshot,
+    encode_snapshot,
+)
 from streamdet.core.steps import AGGREGATION_CODES, ClosedSteps, Steps, running_clock
 from streamdet.events import BreachEvent
 
-SNAPSHOT_MAGIC = b"SDETSNAP"
-SNAPSHOT_VERSION = 1
 AUTO_STEP_POINTS = 6
 NICE_STEPS = (1, 2, 5, 10, 15, 20, 30, 60, 120, 300, 600, 900, 1200, 1800, 3600, 7200, 10800,
               21600, 43200, 86400, 604800)
@@ -128,6 +136,8 @@ class Engine:
         self.peer_groups = peer_groups.PeerJudge(self) if any(r.peers for r in rules) else None
         if self.peer_groups is not None:
             self.parts.extend(self.peer_groups.parts)
+        self.restore_report: RestoreReport | None = None  # set by restore()
+        self.restore_events: list[BreachEvent] = []  # closed events restore() decided
 
     # ------------------------------------------------------------ series lifecycle
 
@@ -488,74 +498,170 @@ class Engine:
         return bool(self.judge.band.n[row] < self.table.warmup[row]) or row in self.pending
 
     # ------------------------------------------------------------ snapshots
+    # Format and report types live in core/snapshot.py; this is the engine side.
 
     def snapshot(self) -> bytes:
-        """All state as bytes: a JSON header and the arrays (numpy .npz, no pickle), checksummed."""
-        n = self.table.n
+        """All state as bytes (see :mod:`streamdet.core.snapshot`): checksummed, no pickle."""
+        return encode_snapshot(self.snapshot_parts())
+
+    def snapshot_parts(self) -> SnapshotParts:
+        """A detached copy of the state, quick to take (one copy of the arrays, shallow copies
+        of the key lists); :func:`encode_snapshot` turns it into bytes in any thread."""
+        tab = self.table
+        n = tab.n
         arrays: dict[str, np.ndarray] = {}
         for part in self.parts:
-            arrays.update(part.state(n))
-        buf = io.BytesIO()
-        np.savez(buf, **arrays)
-        body = buf.getvalue()
+            arrays.update(part.state_views(n))
+        columns, layout = copy_columns(arrays)
         header = {
             "rows": n,
             "rules": [r.name for r in self.config.rules],
+            "rule_kinds": [r.kind for r in self.config.rules],
             "lag_resolution": self.config.lag_resolution,
-            "keys": self.table.keys,
-            "meta": [None if m is None else [m[0], [list(x) for x in m[1]]] for m in self.table.meta],
-            "free": self.table.free,
+            "free": list(tab.free),
             "clock": None if math.isinf(self.clock) else self.clock,
             "next_eviction": None if math.isinf(self.next_eviction) else self.next_eviction,
             "counters": dict(self.counters),
-            "pending": {str(k): v for k, v in self.pending.items()},
+            "pending": {str(k): list(v) for k, v in self.pending.items()},
             "units": {str(k): v for k, v in self.table.units.items()},  # formats: declared units
         }
-        return framing.pack(SNAPSHOT_MAGIC, SNAPSHOT_VERSION, header, body)
+        return SnapshotParts(header, columns, layout, list(tab.keys), list(tab.meta), list(tab.free))
 
     @classmethod
-    def restore(cls, config: Config, data: bytes, *, record_steps: bool = False) -> Engine:
-        """Inverse of :meth:`snapshot`; raises SnapshotError on anything damaged or incompatible."""
-        try:
-            header, body = framing.unpack(data, SNAPSHOT_MAGIC, SNAPSHOT_VERSION, "snapshot")
-        except framing.FrameError as exc:
-            raise SnapshotError(str(exc)) from None
+    def restore(cls, config: Config, data: bytes, *, record_steps: bool = False,
+                on_rule_change: str = "drop") -> Engine:
+        """Inverse of :meth:`snapshot`; raises SnapshotError on anything damaged or incompatible.
+
+        Rules are matched by name. Series of a rule no longer in the config are dropped; series
+        of a rule whose fixed ``step`` or ``kind`` changed learn again from scratch (an open
+        breach is closed: ``restore_events``). Every other series takes the rule's current
+        warm-up, lateness, re-arm and re-level settings. What happened, by rule, is in
+        ``engine.restore_report``; with ``on_rule_change="error"`` any dropped or reset series
+        raise :class:`StateChangeError` instead.
+        """
+        snap = decode_snapshot(data)
+        header = snap.header
         if header["lag_resolution"] != config.lag_resolution:
             raise SnapshotError("snapshot was taken with a different engine.lag_resolution")
         eng = cls(config, record_steps=record_steps)
         n = int(header["rows"])
-        with np.load(io.BytesIO(body), allow_pickle=False) as npz:
-            arrays = {k: npz[k] for k in npz.files}
         try:
             for part in eng.parts:
-                part.load(arrays, n)
+                part.load(snap.arrays, n)
         except ValueError as exc:
             raise SnapshotError(str(exc)) from None
         tab = eng.table
-        tab.keys = header["keys"]
-        tab.meta = [None if m is None else (m[0], tuple(tuple(x) for x in m[1]))
-                    for m in header["meta"]]
-        tab.free = list(header["free"])
-        tab.index = {k: i for i, k in enumerate(tab.keys) if k is not None}
-        # Rules are matched by name: a series whose rule is gone is dropped (counted).
-        old_names = header["rules"]
-        new_index = {r.name: i for i, r in enumerate(config.rules)}
-        remap = np.array([new_index.get(name, -1) for name in old_names] + [-1], np.int64)
-        live = np.flatnonzero(tab.rule[:n] >= 0)
-        tab.rule[live] = remap[tab.rule[live]]
-        gone = np.array([r for r in live.tolist() if tab.rule[r] < 0 and tab.keys[r] is not None],
-                        np.int64)
+        tab.keys = snap.keys
+        tab.meta = snap.meta
+        tab.free = [int(r) for r in header["free"]]
+        tab.index = dict(zip(tab.keys, range(n), strict=True))
+        tab.index.pop(None, None)  # freed rows
         eng.clock = -math.inf if header["clock"] is None else float(header["clock"])
         eng.next_eviction = (-math.inf if header["next_eviction"] is None
                              else float(header["next_eviction"]))
         eng.counters = Counter(header["counters"])
         eng.pending = {int(k): [tuple(p) for p in v] for k, v in header["pending"].items()}
         tab.units = {int(k): str(v) for k, v in header.get("units", {}).items()}  # formats
-        if gone.shape[0]:
-            tab.release(gone)
-            eng.counters["series_dropped_rule_removed"] += gone.shape[0]
+        eng._reconcile_rules(header, on_rule_change)
         return eng
 
+    def _reconcile_rules(self, header: dict, on_rule_change: str) -> None:
+        """Map the snapshot's rules onto the config's by name; drop, reset or re-configure rows."""
+        tab = self.table
+        n = tab.n
+        old_names: list[str] = header["rules"]
+        old_kinds: list[str] | None = header.get("rule_kinds")  # absent in version 1
+        new_index = {r.name: i for i, r in enumerate(self.config.rules)}
+        live = np.flatnonzero(tab.rule[:n] >= 0)
+        old_rule = tab.rule[live]
+        if old_rule.shape[0] and int(old_rule.max()) >= len(old_names):
+            raise SnapshotError("snapshot rows name a rule the snapshot does not list")
+        open_breach = self.breaches.status[live] != 0
+        changes: list[RuleChange] = []
+        gone_rows: list[np.ndarray] = []
+        for i, name in enumerate(old_names):
+            mask = old_rule == i
+            count = int(mask.sum())
+            if name not in new_index and count:
+                changes.append(RuleChange(name, count, "not in the config", "dropped",
+                                          int((mask & open_breach).sum())))
+                gone_rows.append(live[mask])
+        remap = np.array([new_index.get(name, -1) for name in old_names] + [-1], np.int64)
+        tab.rule[live] = remap[old_rule]
+        reset: list[tuple[Rule, np.ndarray]] = []
+        held_dropped = 0
+        for ri, rule in enumerate(self.config.rules):
+            rows = live[tab.rule[live] == ri]
+            if rule.step is None or not rows.shape[0]:
+                continue
+            step = tab.step[rows]
+            inferring = np.isnan(step)
+            for row in rows[inferring].tolist():  # held for step inference: the rule is fixed now
+                held_dropped += len(self.pending.pop(row, ()))
+            tab.step[rows[inferring]] = rule.step
+            what = []
+            moved = ~inferring & (step != rule.step)
+            if moved.any():
+                olds = ", ".join(_duration(s) for s in np.unique(step[moved]).tolist())
+                what.append(f"step {olds} -> {_duration(rule.step)}")
+            old_kind = old_kinds[old_names.index(rule.name)] if old_kinds else rule.kind
+            if old_kind != rule.kind:
+                moved[:] = True
+                what.append(f"kind {old_kind} -> {rule.kind}")
+            if moved.any():
+                changes.append(RuleChange(rule.name, int(moved.sum()), ", ".join(what), "learning again",
+                                          int((self.breaches.status[rows[moved]] != 0).sum())))
+                reset.append((rule, rows[moved]))
+        if changes and on_rule_change == "error":
+            raise StateChangeError(
+                "the snapshot's learned state does not fit the config: " + "; ".join(map(str, changes))
+                + ". Restore the old rule names and steps, or accept the loss with "
+                "`state.on_rule_change: drop` (or `streamdet run --accept-state-changes`)")
+        events = []
+        for rule, rows in reset:
+            events.extend(self.announce.closed_idle(row, "the rule's step or kind changed; the "
+                                                   "series learns again")
+                          for row in rows[self.breaches.status[rows] != 0].tolist())
+            self._relearn(rows)
+            self._set_step(rows, rule, rule.step)
+        if gone_rows:
+            gone = np.concatenate(gone_rows)
+            for row in gone.tolist():
+                self.pending.pop(row, None)
+            tab.release(gone)
+            self.counters["series_dropped_rule_removed"] += gone.shape[0]
+        relearning = sum(r.shape[0] for _rule, r in reset)
+        if relearning:
+            self.counters["series_relearning_rule_changed"] += relearning
+        # Every series takes its rule's current settings (warm-up, lateness, re-arm, re-level).
+        self._apply_rule_settings()
+        self.restore_events = events
+        self.restore_report = RestoreReport(int(self.table.live().sum()) - relearning, tuple(changes),
+                                            held_dropped)
 
-class SnapshotError(ValueError):
-    """A snapshot that cannot be restored: damaged, truncated or from an incompatible build."""
+    def _relearn(self, rows: np.ndarray) -> None:
+        """Forget everything learned for ``rows`` (kept: key, labels, rule, last point time)."""
+        t = self.table
+        keep_rule, keep_seen = t.rule[rows].copy(), t.last_seen[rows].copy()
+        for part in self.parts:
+            part.reset(rows)
+        t.rule[rows], t.last_seen[rows] = keep_rule, keep_seen
+        for row in rows.tolist():
+            self.pending.pop(row, None)
+
+    def _apply_rule_settings(self) -> None:
+        t = self.table
+        n = t.n
+        rule, step = t.rule[:n], t.step[:n]
+        ok = (rule >= 0) & ~np.isnan(step)
+        for ri in np.unique(rule[ok]).tolist():
+            of_rule = ok & (rule == ri)
+            for st in np.unique(step[of_rule]).tolist():
+                self._set_step(np.flatnonzero(of_rule & (step == st)), self.config.rules[ri], st)
+
+
+def _duration(seconds: float) -> str:
+    for unit, size in (("d", 86400), ("h", 3600), ("m", 60)):
+        if seconds >= size and seconds % size == 0:
+            return f"{seconds / size:g}{unit}"
+    return f"{seconds:g}s"

@@ -92,10 +92,13 @@ class PeerState(_OptionalState, ColumnState):
         self.pending = (pr[keep], pk[keep], py[keep])
 
     def state(self, n: int) -> dict[str, np.ndarray]:
-        out = super().state(n)
+        return {k: v.copy() for k, v in self.state_views(n).items()}
+
+    def state_views(self, n: int) -> dict[str, np.ndarray]:
+        out = super().state_views(n)
         out["peers.gid"] = np.full(n, -1, np.int64)  # group ids are rebuilt from labels
         for name, arr in zip(("row", "k", "value"), self.pending, strict=True):
-            out[f"peers.pending.{name}"] = arr.copy()
+            out[f"peers.pending.{name}"] = arr
         return out
 
     def load(self, arrays: dict[str, np.ndarray], n: int) -> None:

@@ -132,20 +132,64 @@ class PointBatch:
 
 class KeyCache:
     """Raw record identity -> series key, and key -> (metric, labels), kept by a long-running
-    reader across batches so a series seen before costs one dict lookup. Bounded."""
+    reader across batches so a series seen before costs one dict lookup.
 
-    __slots__ = ("meta", "notes", "raw")
+    Bounded. After each batch the reader calls :meth:`settle` with the engine's idea of which
+    keys it holds: entries made in that batch for series the engine refused (over
+    ``series.max_series``, or selected by no rule) are removed at once, so refused series never
+    stay cached with their labels. Entries of series the engine later evicts stay until the
+    cache holds more than ``limit`` raw identities or keys; then it is cleared whole at the
+    start of the next batch (each live series is cached again on its next point, one uncached
+    decode each). :func:`cache_limit` sizes ``limit`` from ``max_series``.
+    """
 
-    def __init__(self) -> None:
+    __slots__ = ("limit", "meta", "new_keys", "new_raw", "notes", "raw")
+
+    def __init__(self, limit: int = CACHE_LIMIT) -> None:
+        self.limit = limit
         self.raw: dict[tuple, str] = {}
         self.meta: dict[str, tuple[str, Labels]] = {}
         self.notes: dict[str, SeriesNote] = {}
+        self.new_raw: list[tuple] = []  # identities and keys added since the last trim()
+        self.new_keys: list[str] = []
+
+    def __len__(self) -> int:
+        return max(len(self.raw), len(self.meta))
 
     def trim(self) -> None:
-        if len(self.raw) > CACHE_LIMIT:
+        """Start of a batch: forget what the last batch added, and clear the cache if over its limit."""
+        self.new_raw.clear()
+        self.new_keys.clear()
+        if len(self.raw) > self.limit or len(self.meta) > self.limit:
             self.raw.clear()
             self.meta.clear()
             self.notes.clear()
+
+    def settle(self, known: Callable[[str], bool]) -> int:
+        """Remove the entries added since the last :meth:`trim` whose key ``known`` rejects;
+        returns how many keys were removed. Costs one call per key new in the batch."""
+        gone = {k for k in self.new_keys if not known(k)}
+        if gone:
+            raw = self.raw
+            for ident in self.new_raw:
+                if raw.get(ident) in gone:
+                    del raw[ident]
+            for k in gone:
+                self.meta.pop(k, None)
+                self.notes.pop(k, None)
+        self.new_raw.clear()
+        self.new_keys.clear()
+        return len(gone)
+
+
+def cache_limit(max_series: int) -> int:
+    """Entries a reader's :class:`KeyCache` may hold for an engine capped at ``max_series``:
+    every live series twice over (raw label orders, series evicted since the last clear).
+
+    >>> cache_limit(1000)
+    3024
+    """
+    return 2 * max_series + 1024
 
 
 class PointBuilder:
@@ -155,7 +199,7 @@ class PointBuilder:
     series than the batch holds, which is all the engine needs).
     """
 
-    __slots__ = ("_cache", "_raw", "keys", "notes", "series", "times", "values")
+    __slots__ = ("_cache", "_new_keys", "_new_raw", "_raw", "keys", "notes", "series", "times", "values")
 
     def __init__(self, cache: KeyCache | None = None) -> None:
         if cache is None:
@@ -168,6 +212,8 @@ class PointBuilder:
         self.notes: dict[str, SeriesNote] = cache.notes
         self._cache: dict[tuple[str, Labels], str] = {}
         self._raw = cache.raw
+        self._new_raw = cache.new_raw
+        self._new_keys = cache.new_keys
 
     def __len__(self) -> int:
         return len(self.keys)
@@ -183,6 +229,7 @@ class PointBuilder:
             labels = tuple(sorted((k, v) for k, v in items if v != ""))
             self.add(metric, labels, time, value)
             self._raw[ident] = self.keys[-1]
+            self._new_raw.append(ident)
             return True
         self.keys.append(key)
         self.times.append(time)
@@ -195,7 +242,9 @@ class PointBuilder:
         if key is None:
             key = series_key(metric, labels)
             self._cache[ident] = key
-            self.series[key] = ident
+            if key not in self.series:
+                self.series[key] = ident
+                self._new_keys.append(key)
         self.keys.append(key)
         self.times.append(time)
         self.values.append(value)

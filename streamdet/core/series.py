@@ -2,9 +2,10 @@
 
 Rows are reused after eviction; every other part of the engine keeps its state in arrays
 indexed by these rows. A series whose format declared it a counter (OTLP cumulative sums) is
-marked in ``counter``; units a format gave are kept in ``units`` (row -> unit, sparse).
-Keys of series that no rule selects are remembered (bounded) so the rule globs are not
-re-run for every point.
+marked in ``counter``; units a format gave are kept in ``units`` (row -> unit, sparse). Keys
+of series that no rule selects are remembered (bounded: at most
+``UNMATCHED_MEMORY`` keys and ``UNMATCHED_CHARS`` characters, then forgotten all at once) so the
+rule globs are not re-run for every point. Keys refused for ``max_series`` are not remembered.
 """
 
 from __future__ import annotations
@@ -19,6 +20,7 @@ from streamdet.core.columns import ColumnSpec, ColumnState
 from streamdet.core.points import COUNTER, Labels, PointBatch
 
 UNMATCHED_MEMORY = 100_000
+UNMATCHED_CHARS = 8_000_000
 
 
 class SeriesTable(ColumnState):
@@ -46,6 +48,7 @@ class SeriesTable(ColumnState):
         self.unmatched: set[str] = set()
         self.units: dict[int, str] = {}
         self.any_counter = False  # some row was declared a counter by its format
+        self.unmatched_chars = 0
 
     @property
     def n(self) -> int:
@@ -107,9 +110,11 @@ class SeriesTable(ColumnState):
         metric, labels = meta
         rule = self.config.rule_for(metric, dict(labels))
         if rule is None:
-            if len(self.unmatched) >= UNMATCHED_MEMORY:
+            if len(self.unmatched) >= UNMATCHED_MEMORY or self.unmatched_chars >= UNMATCHED_CHARS:
                 self.unmatched.clear()
+                self.unmatched_chars = 0
             self.unmatched.add(key)
+            self.unmatched_chars += len(key)
             return -1
         return self.add(key, meta, rule, created)
 
@@ -131,6 +136,10 @@ class SeriesTable(ColumnState):
         created.append(row)
         self.rule[row] = rule
         return row
+
+    def knows(self, key: str) -> bool:
+        """Whether ``key`` is a series with state here (readers keep cache entries only for these)."""
+        return key in self.index
 
     def live(self) -> np.ndarray:
         """Mask of rows that hold a series (freed rows have no rule)."""

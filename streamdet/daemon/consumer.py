@@ -29,8 +29,8 @@ from streamdet.alerting.routing import Encoder
 from streamdet.codecs import TimeRules
 from streamdet.codecs.readers import MessageReader
 from streamdet.config import Config
-from streamdet.core.engine import Engine, SnapshotError
-from streamdet.core.points import DecodeError, KeyCache, PointBatch, shorten
+from streamdet.core.engine import Engine, SnapshotError, StateChangeError
+from streamdet.core.points import DecodeError, KeyCache, PointBatch, cache_limit, shorten
 from streamdet.daemon.health import HealthServer, Metrics, reason_code
 from streamdet.daemon.logs import RateLimitedLog
 from streamdet.daemon.producer import Sink
@@ -56,6 +56,10 @@ class PartitionState:
     counters: Counter[str] = field(default_factory=Counter)
     key_cache: KeyCache = field(default_factory=KeyCache)  # raw record identity -> series key
     reader: MessageReader | None = None  # formats: the topic's decoder, made on first use
+
+    def __post_init__(self) -> None:
+        # Bounded by the engine's series cap; entries of refused series are settled after ingest.
+        self.key_cache.limit = cache_limit(self.engine.config.series.max_series)
 
 
 def split_groups(engines: list[Engine]) -> int:
@@ -184,7 +188,11 @@ class Daemon:
                 log.info("assigned %s:%d with no checkpoint", *key)
                 continue
             try:
-                engine = Engine.restore(self.config, ckpt.snapshot)
+                engine = Engine.restore(self.config, ckpt.snapshot,
+                                        on_rule_change=self.settings.on_rule_change)
+            except StateChangeError as exc:
+                path = getattr(self.store, "path", lambda *_: "the state store")(*key)
+                raise StartupError(f"{path}: {exc}") from None
             except SnapshotError as exc:
                 path = getattr(self.store, "path", lambda *_: "the state store")(*key)
                 raise StartupError(f"{path}: cannot restore ({exc}); start it fresh with "
@@ -195,7 +203,23 @@ class Daemon:
             tp.offset = ckpt.next_offset
             log.info("assigned %s:%d restored at offset %d (%d series)", *key, ckpt.next_offset,
                      engine.stats()["series_active"])
+            self._report_restore(key, engine)
         consumer.incremental_assign(partitions)
+
+    def _report_restore(self, key: TP, engine: Engine) -> None:
+        """Log and count what the restore kept, dropped and reset; send the closings it decided."""
+        report = engine.restore_report
+        if report is None:
+            return
+        m = self.metrics.restored_series
+        m.labels("kept").inc(report.series_kept)
+        m.labels("dropped").inc(report.series_dropped)
+        m.labels("relearning").inc(report.series_relearning)
+        for line in report.lines():
+            log.warning("restored %s:%d: %s", *key, line)
+        if engine.restore_events and self.sink is not None:
+            self.sink.send(engine.restore_events, time.monotonic())
+            engine.restore_events = []
 
     def _on_revoke(self, consumer: Consumer, partitions: list[TopicPartition]) -> None:
         keys = [(tp.topic, tp.partition) for tp in partitions]
@@ -271,6 +295,7 @@ class Daemon:
             if part is None:  # revoked while the batch was in flight
                 continue
             events = part.engine.ingest(self._decode(key, items, part, rules))
+            part.key_cache.settle(part.engine.table.knows)
             self._count(part)
             self.sink.send(events, time.monotonic())
             part.next_offset = items[-1].offset() + 1

@@ -63,6 +63,9 @@ class Metrics:
         self.events_out = c("events_out", "Breach events delivered", ["type"])
         self.delivery_failures = c("delivery_failures", "Event deliveries that failed (retried)")
         self.checkpoints = c("checkpoints", "Checkpoints written")
+        self.restored_series = c("restored_series", "Series in restored checkpoints, by what the restore "
+                                 "did with them (kept, dropped: rule gone, relearning: step or kind "
+                                 "changed)", ["outcome"])
         self.series_active = g("series_active", "Series with state")
         self.series_learning = g("series_learning", "Series still in their learning period")
         self.breaches_open = g("breaches_open", "Breaches currently open")

@@ -51,6 +51,7 @@ class DaemonSettings:
     consumer: Mapping[str, str] = field(default_factory=dict)
     producer: Mapping[str, str] = field(default_factory=dict)
     state_dir: str = "./streamdet-state"
+    on_rule_change: str = "error"  # state.on_rule_change: error | drop (see Engine.restore)
     health_address: str = "127.0.0.1:9464"
     source: str = "streamdet"
     log_format: str = "text"
@@ -149,6 +150,7 @@ def parse_settings(config: Config) -> DaemonSettings:
     k.done()
     s = _Section(config.extra.get("state"), "state", problems)
     kw["state_dir"] = s.text("dir", d.state_dir)
+    kw["on_rule_change"] = s.choice("on_rule_change", d.on_rule_change, ("error", "drop"))
     if (why := _unusable_directory(kw["state_dir"])) is not None:
         s.bad("dir", why)
     s.done()
