@@ -36,10 +36,14 @@ from tests.integration.test_daemon import replay_events
 pytestmark = pytest.mark.broker
 
 PARTITIONS = 2
-# (point, call number): late enough that checkpoints and events came before, early enough that
-# events are still pending (WaterFlow's breaches are decided at hours 95-224 and 918-931 of
-# 1,268; with 4 sites and batches of 20 messages there are a few hundred ingest calls).
-FAULTS = {"ingest": 120, "deliver": 3, "checkpoint": 5, "commit": 4}
+# (point, call number). The stream is WaterFlow's first 300 hours for 4 sites (two series per
+# partition), whose breaches are decided at hours 95-127 and 216-223; batches of 20 messages give
+# about 60 batches and ~100 ingest calls, so ``ingest`` and ``deliver`` fail mid-stream with
+# checkpoints and events behind them and events still pending. Checkpoint cuts are taken as
+# often as the writer is free, which depends on the machine: ``checkpoint`` (files, two per cut)
+# and ``commit`` (cuts) fail early, so that they surely fail before the stream ends.
+FAULTS = {"ingest": 40, "deliver": 3, "checkpoint": 7, "commit": 3}
+HOURS, SITES = 300, 4
 SCENARIOS = [(point, kill) for point in FAULTS for kill in (False, True)]
 
 
@@ -98,7 +102,7 @@ def run_scenario(broker, tmp_path, in_topic, ends, point, kill) -> dict:
     proc = subprocess.Popen(cmd, stdout=log, stderr=subprocess.STDOUT,
                             env={**os.environ, "STREAMDET_FAULT": fault})
     try:
-        first_code = proc.wait(90)
+        first_code = proc.wait(60)
     except subprocess.TimeoutExpired:
         proc.kill()
         proc.wait(5)
@@ -131,7 +135,7 @@ def run_scenario(broker, tmp_path, in_topic, ends, point, kill) -> dict:
 
 @pytest.fixture(scope="module")
 def crash_runs(broker, tmp_path_factory):
-    points = waterflow_points(sites=4)
+    points = waterflow_points(sites=SITES)[:HOURS * SITES]
     in_topic = unique("in")
     broker.create_topics(in_topic, partitions=PARTITIONS)
     broker.produce(in_topic, as_messages(points))
@@ -143,7 +147,9 @@ def crash_runs(broker, tmp_path_factory):
     with ThreadPoolExecutor(len(SCENARIOS)) as pool:
         futures = {s: pool.submit(run_scenario, broker, tmp, in_topic, ends, *s) for s in SCENARIOS}
         runs = {s: f.result() for s, f in futures.items()}
-    return runs, replay_events(points), ends
+    expected = replay_events(points)
+    assert len(expected) == 24  # 3 breaches opened and closed, 4 sites
+    return runs, expected, ends
 
 
 @pytest.mark.parametrize("scenario", SCENARIOS, ids=scenario_id)
