@@ -31,7 +31,7 @@ from streamdet.codecs.json import decode_json_messages
 from streamdet.config import Config
 from streamdet.core.engine import Engine, SnapshotError
 from streamdet.core.points import DecodeError, KeyCache, PointBatch, PointBuilder, shorten
-from streamdet.daemon.checkpointer import CheckpointWriter, Cut, frozen_copy, write_checkpoints
+from streamdet.daemon.checkpointer import CheckpointWriter, write_checkpoints
 from streamdet.daemon.faults import FaultPlan
 from streamdet.daemon.health import HealthServer, Metrics, reason_code
 from streamdet.daemon.logs import RateLimitedLog
@@ -337,15 +337,11 @@ class Daemon:
         assert self.sink is not None
         started = time.monotonic()
         barrier = self.sink.barrier()
-        offsets, copies = {}, {}
-        for key in dirty:
-            part = self.parts[key]
-            offsets[key] = part.next_offset
-            copies[key] = frozen_copy(part.engine)
-            part.dirty = False
-        pause = time.monotonic() - started
-        self.metrics.checkpoint_pause.observe(pause)
-        self.writer.start(Cut(offsets, copies, barrier, pause))
+        offsets = {k: self.parts[k].next_offset for k in dirty}
+        self.writer.start(offsets, barrier, {k: self.parts[k].engine for k in dirty})
+        for k in dirty:
+            self.parts[k].dirty = False
+        self.metrics.checkpoint_pause.observe(time.monotonic() - started)
 
     def _checkpoint_progress(self, wait: float = 0.0) -> None:
         """Release the cut in flight once its events are acknowledged; commit once it is written."""
@@ -358,9 +354,18 @@ class Daemon:
             elif time.monotonic() - self.writer.cut.started > 10.0:
                 self._log.log(logging.WARNING, "events not yet acknowledged; checkpoint waiting",
                               key="checkpoint waiting")
+        pending = self.writer.cut
         cut = self.writer.finished(wait)
         if cut is not None:
             self._commit(cut.offsets)
+        elif not self.writer.busy and self.writer.retry:
+            self._mark_dirty(pending.offsets)
+
+    def _mark_dirty(self, keys: Iterable[TP]) -> None:
+        """A cut of these partitions was dropped: the next one must take them again."""
+        for key in keys:
+            if key in self.parts:
+                self.parts[key].dirty = True
 
     def _settle_checkpoint(self, timeout: float) -> bool:
         """Finish the cut in flight, or abandon it after ``timeout``; True if none is left."""
@@ -370,9 +375,7 @@ class Daemon:
                 cut = self.writer.cut
                 log.warning("checkpoint in flight abandoned: its events were not acknowledged in time")
                 self.writer.abandon()
-                for key in cut.offsets if cut is not None else ():
-                    if key in self.parts:
-                        self.parts[key].dirty = True
+                self._mark_dirty(cut.offsets if cut is not None else ())
                 return False
             self._checkpoint_progress(wait=0.05)
         return True
@@ -393,8 +396,9 @@ class Daemon:
             log.warning("events not yet acknowledged; checkpoint postponed")
             return False
         offsets = {k: self.parts[k].next_offset for k in dirty}
-        write_checkpoints(self.store, [(k, offsets[k], self.parts[k].engine.snapshot()) for k in dirty],
-                          self.faults)
+        for _ in dirty:
+            self.faults.hit("checkpoint")  # test-only (STREAMDET_FAULT): once per file
+        write_checkpoints(self.store, [(k, offsets[k], self.parts[k].engine.snapshot()) for k in dirty])
         for k in dirty:
             self.parts[k].dirty = False
         self._commit(offsets)
