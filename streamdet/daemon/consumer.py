@@ -1,13 +1,14 @@
 """The daemon loop: consume metric points, run one engine per input partition, publish events.
 
 Delivery semantics: a partition's engine state and its input offset move together. Every
-``checkpoint_interval`` the loop takes a cut between batches (engine copies, offsets, producer
-barrier); a background thread writes it once every event before the cut is acknowledged, and
-only then are the offsets committed (``checkpointer``). On revoke and shutdown the same happens
-synchronously. After any unexpected error the daemon writes no checkpoint at all and exits
-non-zero: the engines may hold part of a batch their offsets do not cover. After a crash it
-restores the checkpoint and re-reads from the offset it covers; events re-emitted then carry
-the same ids as before, so nothing is lost and duplicates can be dropped by id.
+``checkpoint_interval`` the loop takes a cut between batches (offsets, producer barrier, a
+copy-on-write image of the engines); it is written in the background once every event before
+the cut is acknowledged, and only then are the offsets committed (``checkpointer``). On revoke
+and shutdown the same happens synchronously. After any unexpected error the daemon writes no
+checkpoint at all and exits non-zero: the engines may hold part of a batch their offsets do
+not cover. After a crash it restores the checkpoint and re-reads from the offset it covers;
+events re-emitted then carry the same ids as before, so nothing is lost and duplicates can be
+dropped by id.
 
 Poison is data: a message that cannot be decoded is counted by reason, dead-lettered and
 skipped, and even a decoder bug on one message only costs that message (logged with a
@@ -327,7 +328,7 @@ class Daemon:
                 and self.parts[k].next_offset is not None]
 
     def _begin_checkpoint(self) -> None:
-        """Take a cut of every changed partition and hand it to the writer thread."""
+        """Take a cut of every changed partition and hand it to the background writer."""
         self._last_checkpoint = time.monotonic()
         if self.writer.busy or self._failed:
             return
