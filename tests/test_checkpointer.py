@@ -96,3 +96,13 @@ def test_fault_plan_counts_each_point_apart():
         plan.hit("deliver")
     plan.hit("deliver")  # only the Nth pass fails
     assert FaultPlan.from_environment({}).faults == {}
+
+
+def test_only_a_fork_safe_store_is_written_from_a_forked_child(tmp_path):
+    class MemoryStore:  # a store that does not say it is fork-safe (say, one with a Kafka client)
+        def save(self, checkpoint): ...
+        def load(self, topic, partition): ...
+        def discard(self, topic, partition): ...
+
+    assert not CheckpointWriter(MemoryStore()).use_fork
+    assert CheckpointWriter(LocalStateStore(tmp_path)).use_fork

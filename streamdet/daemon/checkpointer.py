@@ -65,7 +65,11 @@ class CheckpointWriter:
                  use_fork: bool | None = None) -> None:
         self.store = store
         self.faults = faults or FaultPlan()
-        self.use_fork = hasattr(os, "fork") if use_fork is None else use_fork
+        # A store written from a forked child must not need anything a fork leaves behind
+        # (threads, client connections): it says so with ``fork_safe = True``.
+        if use_fork is None:
+            use_fork = hasattr(os, "fork") and getattr(store, "fork_safe", False)
+        self.use_fork = use_fork
         self.cut: Cut | None = None
         self._released = threading.Event()
         self._abandoned = threading.Event()
