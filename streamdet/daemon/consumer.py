@@ -1,9 +1,12 @@
 """The daemon loop: consume metric points, run one engine per input partition, publish events.
 
 Delivery semantics: a partition's engine state and its input offset move together. Every
-``checkpoint_interval`` (and on revoke and shutdown) the daemon waits until all events so far
-are acknowledged, writes each changed partition's checkpoint durably, and only then commits
-the offsets. After a crash it restores the checkpoint and re-reads from the offset it covers;
+``checkpoint_interval`` the loop takes a cut between batches (offsets, producer barrier, a
+copy-on-write image of the engines); it is written in the background once every event before
+the cut is acknowledged, and only then are the offsets committed (``checkpointer``). On revoke
+and shutdown the same happens synchronously. After any unexpected error the daemon writes no
+checkpoint at all and exits non-zero: the engines may hold part of a batch their offsets do
+not cover. After a crash it restores the checkpoint and re-reads from the offset it covers;
 events re-emitted then carry the same ids as before, so nothing is lost and duplicates can be
 dropped by id.
 
@@ -31,11 +34,13 @@ from streamdet.codecs.readers import MessageReader
 from streamdet.config import Config
 from streamdet.core.engine import Engine, SnapshotError, StateChangeError
 from streamdet.core.points import DecodeError, KeyCache, PointBatch, cache_limit, shorten
+from streamdet.daemon.checkpointer import CheckpointWriter, write_checkpoints
+from streamdet.daemon.faults import FaultPlan
 from streamdet.daemon.health import HealthServer, Metrics, reason_code
 from streamdet.daemon.logs import RateLimitedLog
 from streamdet.daemon.producer import Sink
 from streamdet.daemon.settings import DaemonSettings, redacted
-from streamdet.daemon.state_store import Checkpoint, LocalStateStore, StateError, StateStore
+from streamdet.daemon.state_store import LocalStateStore, StateError, StateStore
 
 log = logging.getLogger("streamdet.daemon")
 TP = tuple[str, int]
@@ -76,7 +81,8 @@ class Daemon:
 
     def __init__(self, config: Config, settings: DaemonSettings, *, metrics: Metrics,
                  store: StateStore | None = None, events_file: str | None = None,
-                 fresh_partitions: Iterable[TP] = (), log_interval: float = 10.0) -> None:
+                 fresh_partitions: Iterable[TP] = (), log_interval: float = 10.0,
+                 faults: FaultPlan | None = None) -> None:
         self.config = config
         self.settings = settings
         self.metrics = metrics
@@ -95,6 +101,10 @@ class Daemon:
         self.consumer: Consumer | None = None
         self.sink: Sink | None = None
         self.health_port: int | None = None
+        # --- crash consistency (see DEVELOPERS.md, "Checkpoint ordering")
+        self.faults = faults if faults is not None else FaultPlan.from_environment()  # tests only
+        self.writer = CheckpointWriter(self.store, self.faults)
+        self._failed = False  # set on any unexpected error: no checkpoint is written after it
 
     # ------------------------------------------------------------ configuration
 
@@ -139,32 +149,43 @@ class Daemon:
                          log_interval=self.log_interval,
                          # alert routing (issue 10): routed encoding and the optional Alertmanager sink
                          encoder=Encoder(self.config, self.settings.source),
-                         alerts=alertmanager_sink(self.config, self.settings, self.metrics))
+                         alerts=alertmanager_sink(self.config, self.settings, self.metrics),
+                         faults=self.faults)
         self.consumer = Consumer(self.consumer_conf())
         self.consumer.subscribe(list(self.settings.input_topics), on_assign=self._on_assign,
                                 on_revoke=self._on_revoke, on_lost=self._on_lost)
-        code = 0
+        code = 1
         try:
             while not self._stop.is_set():
                 msgs = self.consumer.consume(self.settings.batch_size, self.settings.poll_timeout)
                 self.sink.poll()
                 if msgs:
                     self._process(msgs)
+                self._checkpoint_progress()
                 now = time.monotonic()
                 if now - self._last_checkpoint >= self.settings.checkpoint_interval:
-                    self.checkpoint(list(self.parts))
+                    self._begin_checkpoint()
                 if now - self._last_probe >= 2.0:
                     self._probe()
                     self._update_gauges()
                     self._log.flush()
                     self._librdkafka_log.flush()
+            code = 0
         except (StateError, SnapshotError, StartupError) as exc:
             log.error("%s", exc)
             code = 2
+        except Exception:
+            log.exception("unexpected error; exiting without a checkpoint (a restart resumes from the "
+                          "last one and emits the same events again)")
         finally:
-            log.info("stopping: flushing events, checkpointing, committing")
             if code == 0:
+                log.info("stopping: flushing events, checkpointing, committing")
                 self.checkpoint(list(self.parts), timeout=5.0)
+            else:
+                # The engines may hold (part of) a batch their offsets do not cover: from here
+                # on nothing is checkpointed, not even by the revoke that close() triggers.
+                self._failed = True
+                self.writer.abandon()
             self.sink.close(timeout=2.0)
             try:
                 self.consumer.close()
@@ -177,6 +198,7 @@ class Daemon:
     # ------------------------------------------------------------ rebalances
 
     def _on_assign(self, consumer: Consumer, partitions: list[TopicPartition]) -> None:
+        self._settle_checkpoint(5.0)  # a write in flight may be for a partition assigned again
         for tp in partitions:
             key = (tp.topic, tp.partition)
             if key in self.fresh:
@@ -296,6 +318,7 @@ class Daemon:
                 continue
             events = part.engine.ingest(self._decode(key, items, part, rules))
             part.key_cache.settle(part.engine.table.knows)
+            self.faults.hit("ingest")  # test-only (STREAMDET_FAULT): state moved, offset not yet
             self._count(part)
             self.sink.send(events, time.monotonic())
             part.next_offset = items[-1].offset() + 1
@@ -334,35 +357,107 @@ class Daemon:
         part.counters = Counter(c)
 
     # ------------------------------------------------------------ checkpoints
+    # Ordering (DEVELOPERS.md, "Checkpoint ordering"): events of a batch handed to the sink ->
+    # cut between batches -> events up to the cut acknowledged -> checkpoint files durable ->
+    # offsets committed. Nothing is checkpointed once ``_failed`` is set.
+
+    def _dirty(self, keys: Iterable[TP]) -> list[TP]:
+        return [k for k in keys if k in self.parts and self.parts[k].dirty
+                and self.parts[k].next_offset is not None]
+
+    def _begin_checkpoint(self) -> None:
+        """Take a cut of every changed partition and hand it to the background writer."""
+        self._last_checkpoint = time.monotonic()
+        if self.writer.busy or self._failed:
+            return
+        dirty = self._dirty(self.parts)
+        if not dirty:
+            return
+        assert self.sink is not None
+        started = time.monotonic()
+        barrier = self.sink.barrier()
+        offsets = {k: self.parts[k].next_offset for k in dirty}
+        self.writer.start(offsets, barrier, {k: self.parts[k].engine for k in dirty})
+        for k in dirty:
+            self.parts[k].dirty = False
+        self.metrics.checkpoint_pause.observe(time.monotonic() - started)
+
+    def _checkpoint_progress(self, wait: float = 0.0) -> None:
+        """Release the cut in flight once its events are acknowledged; commit once it is written."""
+        if not self.writer.busy:
+            return
+        assert self.sink is not None and self.writer.cut is not None
+        if not self.writer.released:
+            if self.sink.acknowledged(self.writer.cut.barrier):
+                self.writer.release()
+            elif time.monotonic() - self.writer.cut.started > 10.0:
+                self._log.log(logging.WARNING, "events not yet acknowledged; checkpoint waiting",
+                              key="checkpoint waiting")
+        pending = self.writer.cut
+        cut = self.writer.finished(wait)
+        if cut is not None:
+            self._commit(cut.offsets)
+        elif not self.writer.busy and self.writer.retry:
+            self._mark_dirty(pending.offsets)
+
+    def _mark_dirty(self, keys: Iterable[TP]) -> None:
+        """A cut of these partitions was dropped: the next one must take them again."""
+        for key in keys:
+            if key in self.parts:
+                self.parts[key].dirty = True
+
+    def _settle_checkpoint(self, timeout: float) -> bool:
+        """Finish the cut in flight, or abandon it after ``timeout``; True if none is left."""
+        deadline = time.monotonic() + timeout
+        while self.writer.busy:
+            if time.monotonic() >= deadline:
+                cut = self.writer.cut
+                log.warning("checkpoint in flight abandoned: its events were not acknowledged in time")
+                self.writer.abandon()
+                self._mark_dirty(cut.offsets if cut is not None else ())
+                return False
+            self._checkpoint_progress(wait=0.05)
+        return True
 
     def checkpoint(self, keys: list[TP], timeout: float = 5.0) -> bool:
-        """Events acknowledged -> checkpoints durable -> offsets committed, in that order."""
+        """Now (revoke, shutdown): events acknowledged -> checkpoints durable -> offsets committed."""
         self._last_checkpoint = time.monotonic()
-        dirty = [k for k in keys if k in self.parts and self.parts[k].dirty]
+        if self._failed:
+            log.warning("no checkpoint after an unexpected error; the last durable one stands")
+            return False
+        if not self._settle_checkpoint(timeout):
+            return False
+        dirty = self._dirty(keys)
         if not dirty:
             return True
         assert self.sink is not None and self.consumer is not None
         if not self.sink.flush(timeout):
             log.warning("events not yet acknowledged; checkpoint postponed")
             return False
-        offsets = []
-        for key in dirty:
-            part = self.parts[key]
-            if part.next_offset is None:
-                continue
-            self.store.save(Checkpoint(key[0], key[1], part.next_offset, part.engine.snapshot()))
-            part.dirty = False
-            offsets.append(TopicPartition(key[0], key[1], part.next_offset))
+        offsets = {k: self.parts[k].next_offset for k in dirty}
+        for _ in dirty:
+            self.faults.hit("checkpoint")  # test-only (STREAMDET_FAULT): once per file
+        write_checkpoints(self.store, [(k, offsets[k], self.parts[k].engine.snapshot()) for k in dirty])
+        for k in dirty:
+            self.parts[k].dirty = False
+        self._commit(offsets)
+        return True
+
+    def _commit(self, offsets: dict[TP, int | None]) -> None:
+        """Checkpoints for ``offsets`` are durable: count them and commit the offsets still ours."""
+        self.faults.hit("commit")  # test-only (STREAMDET_FAULT)
         self.metrics.checkpoints.inc(len(offsets))
         self._checkpoint_done = time.monotonic()
-        if offsets:
+        assert self.consumer is not None
+        tps = [TopicPartition(t, p, o) for (t, p), o in offsets.items()
+               if (t, p) in self.parts and o is not None]
+        if tps:
             try:
                 # Asynchronous: a sync commit would block for as long as the brokers are away.
                 # The checkpoint is durable and carries the offset, and a restart seeks there.
-                self.consumer.commit(offsets=offsets, asynchronous=True)
+                self.consumer.commit(offsets=tps, asynchronous=True)
             except KafkaException as exc:
                 log.warning("offset commit failed (%s); the checkpoint still covers it", exc)
-        return True
 
     # ------------------------------------------------------------ health
 

@@ -66,6 +66,10 @@ class Metrics:
         self.restored_series = c("restored_series", "Series in restored checkpoints, by what the restore "
                                  "did with them (kept, dropped: rule gone, relearning: step or kind "
                                  "changed)", ["outcome"])
+        self.checkpoint_pause = Histogram(
+            f"{NS}_checkpoint_pause_seconds",
+            "Time the consume loop spends taking a checkpoint's copy (the rest happens in the background)",
+            registry=registry, buckets=(0.001, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1, 2.5, 5))
         self.series_active = g("series_active", "Series with state")
         self.series_learning = g("series_learning", "Series still in their learning period")
         self.breaches_open = g("breaches_open", "Breaches currently open")

@@ -10,10 +10,16 @@ as too large or invalid) is not retried: a dead letter goes again as a truncated
 ``streamdet-truncated`` header, and what still cannot go is logged with where it came from,
 counted in ``streamdet_undeliverable_total{kind}`` and skipped, so one message never stalls
 the partition or the checkpoints behind it.
+
+Every message handed over gets a sequence number (kept across retries and truncation);
+``barrier()`` names everything handed over so far and ``acknowledged(barrier)`` says, without
+blocking, whether all of it is settled (acknowledged, or declared undeliverable and counted).
+A checkpoint in the background waits on that instead of a blocking ``flush``.
 """
 
 from __future__ import annotations
 
+import heapq
 import logging
 import os
 import time
@@ -24,6 +30,7 @@ from typing import IO
 from confluent_kafka import KafkaError, KafkaException, Producer
 
 from streamdet.alerting.routing import Encoder
+from streamdet.daemon.faults import FaultPlan
 from streamdet.daemon.health import Metrics
 from streamdet.daemon.logs import RateLimitedLog
 from streamdet.events import CONTENT_TYPE, BreachEvent
@@ -41,15 +48,16 @@ _ENVELOPE = 1024  # room left for the record framing librdkafka adds to key, val
 class _Message:
     """One message handed to the producer, with what is needed to retry or report it."""
 
-    __slots__ = ("decided_at", "event_type", "headers", "key", "kind", "source", "topic", "truncated",
-                 "value")
+    __slots__ = ("decided_at", "event_type", "headers", "key", "kind", "seq", "source", "topic",
+                 "truncated", "value")
 
     def __init__(self, topic: str, key: bytes, value: bytes, headers: Headers, *, kind: str,
                  source: str, event_type: str | None = None, decided_at: float = 0.0,
-                 truncated: bool = False) -> None:
+                 truncated: bool = False, seq: int = 0) -> None:
         self.topic, self.key, self.value, self.headers = topic, key, value, headers
         self.kind, self.source, self.event_type, self.decided_at = kind, source, event_type, decided_at
         self.truncated = truncated
+        self.seq = seq  # order of hand-over; a retry or truncated copy keeps it
 
 
 class Sink:
@@ -58,8 +66,10 @@ class Sink:
     def __init__(self, *, metrics: Metrics, source: str, producer_conf: dict[str, str] | None,
                  output_topic: str | None, dead_letter_topic: str | None,
                  events_file: str | None = None, log_interval: float = 10.0,
-                 encoder: Encoder | None = None, alerts=None) -> None:
+                 encoder: Encoder | None = None, alerts=None,
+                 faults: FaultPlan | None = None) -> None:
         self.metrics = metrics
+        self.faults = faults or FaultPlan()
         self.source = source
         # Routing data (severity, summary, labels, annotations) and the wall-clock detection time
         # are added here, in the adapter; ``alerts`` (an AlertmanagerSink) gets every event too.
@@ -76,6 +86,9 @@ class Sink:
         self.retry: deque[_Message] = deque()
         self.backpressure_waits = 0
         self.log = RateLimitedLog(log, log_interval)
+        self.handed = 0  # sequence number of the last message handed over
+        self._open: list[int] = []  # heap: sequence numbers not yet settled (with settled ones)
+        self._settled: set[int] = set()  # settled but still in the heap
 
     # ------------------------------------------------------------ sending
 
@@ -92,19 +105,22 @@ class Sink:
         if self.output_topic is None or self.producer is None:
             return
         headers = [("content-type", CONTENT_TYPE.encode())]
-        for e in events:
+        half = len(events) // 2
+        for i, e in enumerate(events):
+            if i == half:
+                self.faults.hit("deliver")  # test-only (STREAMDET_FAULT)
             # breaches are keyed by series, peer outliers by group: each stays in order
             self._produce(_Message(self.output_topic, e.partition_key.encode(),
                                    self.encoder.to_json(e, detected_at), headers,
                                    kind="event", source=f"{e.type} {e.id}", event_type=e.type,
-                                   decided_at=decided_at))
+                                   decided_at=decided_at, seq=self._next_seq()))
 
     def dead_letter(self, value: bytes, key: bytes | None, headers: Headers, source: str = "") -> None:
         """Send an undecodable message on; ``source`` (topic/partition@offset) is for the log."""
         if self.dead_letter_topic is None or self.producer is None:
             return
         self._produce(_Message(self.dead_letter_topic, key or b"", value, headers, kind="dead_letter",
-                               source=source))
+                               source=source, seq=self._next_seq()))
         self.metrics.dead_letters.inc()
 
     def _produce(self, m: _Message) -> None:
@@ -121,6 +137,7 @@ class Sink:
                              key=("delivery", m.topic))
                 self.retry.append(m)
                 return
+            self._settle(m.seq)
             if m.event_type is not None:
                 self.metrics.events_out.labels(m.event_type).inc()
                 self.metrics.delivery_delay.observe(max(0.0, time.monotonic() - m.decided_at))
@@ -149,6 +166,7 @@ class Sink:
                 self._produce(copy)
                 return
         self.metrics.undeliverable.labels(m.kind).inc()
+        self._settle(m.seq)
         what = "dead letter" if m.kind == "dead_letter" else "event"
         self.log.log(logging.ERROR, "%s from %s (%d bytes) cannot be delivered to %s (%s); skipped",
                      what, m.source or "?", len(m.key) + len(m.value), m.topic, why,
@@ -163,9 +181,35 @@ class Sink:
         headers = [*m.headers, ("streamdet-truncated", b"true"),
                    ("streamdet-original-size", str(len(m.value)).encode())]
         return _Message(m.topic, m.key, m.value[:min(room, max(0, len(m.value) - 1))], headers,
-                        kind=m.kind, source=m.source, truncated=True)
+                        kind=m.kind, source=m.source, truncated=True, seq=m.seq)
 
     # ------------------------------------------------------------ acknowledgements
+
+    def _next_seq(self) -> int:
+        self.handed += 1
+        heapq.heappush(self._open, self.handed)
+        return self.handed
+
+    def _settle(self, seq: int) -> None:
+        self._settled.add(seq)
+        while self._open and self._open[0] in self._settled:
+            self._settled.discard(heapq.heappop(self._open))
+
+    def barrier(self) -> int:
+        """Everything handed over so far, as one number for :meth:`acknowledged`.
+
+        Events written to a file are flushed and synced here (a small file: cheap)."""
+        if self.file is not None:
+            self.file.flush()
+            os.fsync(self.file.fileno())
+        return self.handed
+
+    def acknowledged(self, barrier: int) -> bool:
+        """Whether every message up to ``barrier`` is settled (serves delivery reports first)."""
+        if self.producer is None:
+            return True
+        self.poll()
+        return not self._open or self._open[0] > barrier
 
     def poll(self) -> None:
         if self.producer is not None:

@@ -45,6 +45,8 @@ def _safe(topic: str) -> str:
 class LocalStateStore:
     """One file per partition in a directory: ``<topic>-<partition>.ckpt``."""
 
+    fork_safe = True  # plain file writes: usable from the checkpoint writer's forked child
+
     def __init__(self, directory: str | Path) -> None:
         self.dir = Path(directory)
         self.dir.mkdir(parents=True, exist_ok=True)
