@@ -27,7 +27,7 @@ from confluent_kafka import Consumer, KafkaError, KafkaException, Message, Topic
 from streamdet.codecs import TimeRules, decode_influx
 from streamdet.codecs.json import decode_json_messages
 from streamdet.config import Config
-from streamdet.core.engine import Engine, SnapshotError
+from streamdet.core.engine import DROP_REASONS, Engine, SnapshotError
 from streamdet.core.points import DecodeError, KeyCache, PointBatch, PointBuilder, shorten
 from streamdet.daemon.health import HealthServer, Metrics, reason_code
 from streamdet.daemon.logs import RateLimitedLog
@@ -38,7 +38,7 @@ from streamdet.daemon.state_store import Checkpoint, LocalStateStore, StateError
 log = logging.getLogger("streamdet.daemon")
 TP = tuple[str, int]
 _COUNTER_METRICS = ("points_accepted", "points_late")  # engine counter = metric attribute
-_DROP_REASONS = ("points_no_rule", "points_series_limit", "counter_samples_dropped")
+_DROP_REASONS = ("points_no_rule", "points_series_limit", "counter_samples_dropped", "points_bad_time")
 
 
 class StartupError(RuntimeError):
@@ -260,6 +260,8 @@ class Daemon:
                 continue
             events = part.engine.ingest(self._decode(key, items, part, rules))
             self._count(part)
+            if part.engine.dropped:
+                self._log_dropped(key, part.engine)
             self.sink.send(events, time.monotonic())
             part.next_offset = items[-1].offset() + 1
             part.dirty = True
@@ -283,6 +285,14 @@ class Daemon:
         ]
         self.sink.dead_letter(msg.value() or b"", msg.key(), headers,
                               f"{msg.topic()}/{msg.partition()}@{msg.offset()}")
+
+    def _log_dropped(self, key: TP, engine: Engine) -> None:
+        """One line per interval about points the engine dropped (late, impossible time):
+        the first one's series key and how far behind it was, and the batch's counts."""
+        counts = ", ".join(f"{n} {DROP_REASONS[reason]}"
+                           for reason, n in sorted(engine.dropped_counts.items()) if n)
+        self._log.log(logging.WARNING, "dropped point(s) on %s:%d (%s); first: %s", *key, counts,
+                      engine.dropped[0], key="dropped point")
 
     def _count(self, part: PartitionState) -> None:
         c = part.engine.counters
