@@ -321,8 +321,9 @@ class Engine:
         self.counters["points_late"] += idx.shape[0]
         self.counters["points_late_series"] += n_series
         self.counters["points_late_grace"] += idx.shape[0] - n_series
-        self.dropped_counts["late_series"] += n_series
-        self.dropped_counts["late_grace"] += idx.shape[0] - n_series
+        for reason, n in (("late_series", n_series), ("late_grace", idx.shape[0] - n_series)):
+            if n:
+                self.dropped_counts[reason] += n
         room = DROPPED_NOTES - len(self.dropped)
         for j in range(min(room, idx.shape[0])):
             i = int(idx[j])
