@@ -183,7 +183,9 @@ def mixed_stream() -> list[tuple[str, float, float]]:
 
 @pytest.mark.parametrize("chunk", [1, 7])
 def test_batching_does_not_change_events_or_counts(chunk):
-    cfg = {"rules": [{"name": "flow", "warmup": "60 steps", "lateness": "30s", "grace": "70m"}]}
+    cfg = {"rules": [{"name": "b", "match": {"labels": {"site": "b"}}, "warmup": "60 steps",
+                      "grace": "30m"},  # a second rule: grace per row
+                     {"name": "flow", "warmup": "60 steps", "lateness": "30s", "grace": "70m"}]}
     whole_eng, whole = feed(mixed_stream(), cfg)
     eng, parts = feed(mixed_stream(), cfg, chunk=chunk)
     assert by_id(parts) == by_id(whole)  # same events, every field

@@ -152,6 +152,7 @@ class Engine:
         self.any_lateness = any(r.lateness > 0 for r in rules)
         # Never beyond idle_ttl: a quiet series' last step is judged before it is forgotten.
         self.rule_grace = np.array([min(r.grace, config.series.idle_ttl) for r in rules])
+        self.one_grace = bool((self.rule_grace == self.rule_grace[0]).all())
         self.any_counter = bool(self.rule_counter.any())
         # Rules whose hours follow a local time zone (index -> zone); empty: all UTC.
         self.zones = {i: zoneinfo.ZoneInfo(r.timezone) for i, r in enumerate(rules) if r.timezone != "UTC"}
@@ -263,7 +264,7 @@ class Engine:
         k = np.floor(t / step).astype(np.int64)
         end = (k + 1) * step
         lateness = tab.lateness[rows] if self.any_lateness else 0.0
-        grace = per_rule(self.rule_grace, tab.rule[rows])
+        grace = self._grace_of(rows)
         # Late: the point's own step had closed for its series when it arrived.
         late = end <= np.maximum(series_seen - lateness if self.any_lateness else series_seen,
                                  seen_clock - grace)
@@ -298,7 +299,13 @@ class Engine:
         lateness, or the partition's clock minus grace, whichever is later."""
         tab = self.table
         own = tab.last_seen[rows] - tab.lateness[rows] if self.any_lateness else tab.last_seen[rows]
-        return np.maximum(own, self.clock - per_rule(self.rule_grace, tab.rule[rows]))
+        return np.maximum(own, self.clock - self._grace_of(rows))
+
+    def _grace_of(self, rows: np.ndarray | slice) -> np.ndarray | float:
+        """Grace per row; one number when all rules share it (no gather)."""
+        if self.one_grace:
+            return float(self.rule_grace[0])
+        return per_rule(self.rule_grace, self.table.rule[rows])
 
     def _drop_bad_times(self, batch: PointBatch) -> PointBatch:
         """Drop (count, describe) points whose time is NaN, infinite or beyond the calendar."""
