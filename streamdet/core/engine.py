@@ -35,7 +35,7 @@ from streamdet.core.evidence import EvidenceWindow, combined_surprise, critical_
 from streamdet.core.forecast import StepContext
 from streamdet.core.forecast.base import as_index
 from streamdet.core.judge import TemporalJudge
-from streamdet.core.points import MAX_TIME, MIN_TIME, PointBatch
+from streamdet.core.points import MAX_TIME, MIN_TIME, PointBatch, shorten
 from streamdet.core.relevel import RunTracker
 from streamdet.core.series import SeriesTable
 from streamdet.core.steps import (
@@ -45,7 +45,7 @@ from streamdet.core.steps import (
     running_clock,
     series_running_clock,
 )
-from streamdet.events import BreachEvent
+from streamdet.events import BreachEvent, rfc3339
 
 SNAPSHOT_MAGIC = b"SDETSNAP"
 SNAPSHOT_VERSION = 1
@@ -107,12 +107,13 @@ class DroppedPoint:
     allowed: float = math.nan
 
     def __str__(self) -> str:
+        key = shorten(self.key, 200)
         if self.reason == "bad_time":
-            return f"{self.key}: time {self.time!r} is not a finite number within the years 1 to 9999"
+            return f"{key}: time {self.time!r} is not a finite number within the years 1 to 9999"
         whose = ("its series' newest point" if self.reason == "late_series"
                  else "the partition's newest point")
         allowance = "lateness" if self.reason == "late_series" else "grace"
-        return (f"{self.key}: late point at {self.time:.3f} dropped, its step had closed: "
+        return (f"{key}: late point at {rfc3339(self.time)} dropped, its step had closed: "
                 f"{self.behind:.0f} s behind {whose} ({allowance} {self.allowed:g} s after the step's end)")
 
 
@@ -342,7 +343,8 @@ class Engine:
                 float(lat[j] if own else gr[j])))
 
     def advance(self, clock: float) -> list[BreachEvent]:
-        """Move event time forward without points (an idle input): closes steps now due."""
+        """Move the partition's event time forward without points (an idle input): closes the
+        steps it puts past their end plus grace."""
         if clock <= self.clock:
             return []
         self.clock = clock
