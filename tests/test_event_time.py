@@ -208,6 +208,7 @@ def test_impossible_times_are_dropped_counted_and_move_no_clock():
     assert [d.reason for d in eng.dropped] == ["bad_time"] * 6 + ["late_series", "late_grace"]
     assert str(eng.dropped[0]) == "z0: time nan is not a finite number within the years 1 to 9999"
     assert all(f"z{i}" not in eng.table.index for i in range(6))  # no series created for them
+    assert eng.advance(math.nan) == [] and eng.clock == T0 + 120
     # a batch of nothing but impossible times
     assert eng.ingest(stream(("a", math.nan, 1.0))) == [] and eng.counters["points_bad_time"] == 7
     # through the JSON codec the same records are refused with a reason each

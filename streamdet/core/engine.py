@@ -345,9 +345,9 @@ class Engine:
     def advance(self, clock: float) -> list[BreachEvent]:
         """Move the partition's event time forward without points (an idle input): closes the
         steps it puts past their end plus grace."""
-        if clock <= self.clock:
+        if not clock > self.clock:  # never back, and never to NaN
             return []
-        self.clock = clock
+        self.clock = float(clock)
         return self._judge_all(ClosedSteps.empty()) + self._evict()
 
     def finish(self) -> list[BreachEvent]:
