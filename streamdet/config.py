@@ -179,6 +179,7 @@ class Rule:
     step: float | None = 60.0  # None: inferred per series ("auto")
     aggregation: str = "mean"
     lateness: float = 0.0
+    grace: float = 7200.0  # partition event time past a step's end that closes it for every series
     width: float = 3.0
     min_width: float = 0.0
     scale_floor: float = 0.5
@@ -562,6 +563,9 @@ def _parse_rule(s: _Section, index: int) -> Rule:
     lateness = s.duration("lateness", 0.0)
     if step is not None and lateness >= step:
         s.bad("lateness", f"must be shorter than the step ({step:g} s), got {lateness:g} s")
+    grace = s.duration("grace", d.grace)
+    if grace < lateness:
+        s.bad("grace", f"must be at least lateness ({lateness:g} s), got {grace:g} s")
     confirm = s.section("confirm")
     confirm_steps = confirm.number("steps", d.confirm_steps, lo=1, hi=32, integer=True)
     if confirm.get("fraction", None) is not None:
@@ -585,6 +589,7 @@ def _parse_rule(s: _Section, index: int) -> Rule:
         step=step,
         aggregation=s.choice("aggregation", d.aggregation, AGGREGATIONS),
         lateness=lateness,
+        grace=grace,
         width=s.number("width", d.width, lo=0.0, lo_open=True),
         min_width=s.number("min_width", d.min_width, lo=0.0),
         scale_floor=s.number("scale_floor", d.scale_floor, lo=0.0, hi=1.0),

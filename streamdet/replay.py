@@ -19,11 +19,12 @@ import numpy as np
 from streamdet.codecs import DECODERS, TimeRules, format_for_path
 from streamdet.codecs.readers import MessageReader
 from streamdet.config import Config
-from streamdet.core.engine import Engine
+from streamdet.core.engine import DroppedPoint, Engine
 from streamdet.core.points import DecodeError, PointBatch
 from streamdet.events import OPENED, BreachEvent
 
 CHUNK = 50_000
+DROPPED_SHOWN = 10  # dropped points (late, impossible time) described in the summary
 
 
 @dataclass(slots=True)
@@ -34,6 +35,7 @@ class ReplayResult:
     records: int
     seconds: float
     breaches: Counter[str] = field(default_factory=Counter)
+    dropped: list[DroppedPoint] = field(default_factory=list)  # the first few, described
 
     def summary(self) -> dict[str, object]:
         c = self.engine.counters
@@ -43,6 +45,9 @@ class ReplayResult:
             "bad_records": len(self.errors),
             "points_accepted": c["points_accepted"],
             "points_late": c["points_late"],
+            "points_late_series": c["points_late_series"],
+            "points_late_grace": c["points_late_grace"],
+            "points_bad_time": c["points_bad_time"],
             "points_no_rule": c["points_no_rule"],
             "points_series_limit": c["points_series_limit"],
             "series": stats["series_active"],
@@ -87,14 +92,17 @@ def replay(paths: Sequence[str | Path], config: Config, *, fmt: str | None = Non
     order = np.argsort(points.time, kind="stable")
     engine = Engine(config, record_steps=record_steps)
     events: list[BreachEvent] = []
+    dropped: list[DroppedPoint] = []
     total = len(points)
     for lo in range(0, total, CHUNK):
         events.extend(engine.ingest(points.take(order[lo:lo + CHUNK])))
+        dropped.extend(engine.dropped[:DROPPED_SHOWN - len(dropped)])
         if progress:
             progress(min(lo + CHUNK, total), total)
     events.extend(engine.finish())
     result = ReplayResult(engine, events, errors, records, time.perf_counter() - started)
     result.breaches = Counter(e.series for e in events if e.type == OPENED)
+    result.dropped = dropped
     return result
 
 
@@ -134,7 +142,8 @@ def format_summary(result: ReplayResult, *, top: int = 20, max_errors: int = 10)
     lines = [
         f"records read      {s['records']:,}  (bad: {s['bad_records']:,})",
         f"points accepted   {s['points_accepted']:,}  (late: {s['points_late']:,}, "
-        f"no rule: {s['points_no_rule']:,}, over series cap: {s['points_series_limit']:,})",
+        f"no rule: {s['points_no_rule']:,}, over series cap: {s['points_series_limit']:,}, "
+        f"impossible time: {s['points_bad_time']:,})",
         f"series            {s['series']:,}  (still learning, no verdicts yet: "
         f"{s['series_learning']:,})",
         f"breaches opened   {s['breaches_opened']:,}  (open at the end: {s['breaches_open_at_end']:,})",
@@ -150,6 +159,12 @@ def format_summary(result: ReplayResult, *, top: int = 20, max_errors: int = 10)
     if learning:
         lines.append(f"learning series (too little history to judge): {', '.join(learning[:10])}"
                      + (" ..." if len(learning) > 10 else ""))
+    if s["points_late"]:
+        lines.append(f"late points: {s['points_late_series']:,} after their series had moved on, "
+                     f"{s['points_late_grace']:,} after the partition's grace")
+    if result.dropped:
+        lines.append("dropped points (first ones):")
+        lines.extend(f"  {d}" for d in result.dropped)
     if result.errors:
         lines.append("bad records (first ones):")
         lines.extend(f"  {e}" for e in result.errors[:max_errors])

@@ -32,13 +32,20 @@ def test_last_is_by_time_not_arrival():
     assert closed_values(eng)[1][0] == 5.0
 
 
-def test_step_closes_when_a_later_point_arrives_or_the_clock_passes():
+def test_step_closes_when_its_series_moves_on_or_the_partition_passes_grace():
+    # Event time is per series: another series' newer point does not close a's step; the
+    # partition's event time closes it only once past its end plus grace (default 2 h).
     eng = Engine(parse_config({"rules": [{"name": "r"}]}), record_steps=True)
     eng.ingest(batch("a", [0, 30], [1, 3]))
     assert eng.counters["steps_closed"] == 0
-    eng.ingest(batch("b", [65], [0]))  # another series moves event time past a's step end
-    assert eng.counters["steps_closed"] == 1
+    eng.ingest(batch("b", [65], [0]))
+    assert eng.counters["steps_closed"] == 0
+    eng.ingest(batch("b", [60 + 7199], [0]))  # b's own step 0 closes; a's is within grace
+    assert eng.counters["steps_closed"] == 1 and closed_values(eng, "a") == ([], [])
+    eng.ingest(batch("b", [60 + 7200], [0]))  # the partition passes a's step end + grace
     assert closed_values(eng, "a") == ([0.0], [2.0])
+    eng.ingest(batch("a", [40], [5]))  # that step has closed for a now: late
+    assert eng.counters["points_late"] == eng.counters["points_late_grace"] == 1
 
 
 def test_lateness_merges_recent_points_and_drops_older_ones():
@@ -104,10 +111,11 @@ def test_events_do_not_depend_on_batching(cuts, seed):
 
 def test_advance_closes_steps_of_quiet_series():
     # Event time can be moved on without points (an input known to be idle up to a time).
-    eng = Engine(parse_config({"rules": [{"name": "r"}]}), record_steps=True)
+    # Without points of its own a series' step closes when event time passes its end + grace.
+    eng = Engine(parse_config({"rules": [{"name": "r", "grace": "10m"}]}), record_steps=True)
     eng.ingest(batch("s", [10, 20], [1, 3]))
     assert eng.counters["steps_closed"] == 0
-    assert eng.advance(30) == [] and eng.counters["steps_closed"] == 0  # not past the step end
-    eng.advance(60)
+    assert eng.advance(659) == [] and eng.counters["steps_closed"] == 0  # not past end + grace
+    eng.advance(660)
     assert closed_values(eng) == ([0.0], [2.0])
     assert eng.advance(10) == []  # time never goes back

@@ -14,7 +14,16 @@ import math
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 
-from streamdet.core.points import DecodeError, Labels, PointBatch, PointBuilder, series_key, shorten
+from streamdet.core.points import (
+    MAX_TIME,
+    MIN_TIME,
+    DecodeError,
+    Labels,
+    PointBatch,
+    PointBuilder,
+    series_key,
+    shorten,
+)
 
 # Documented in the README's input section; a record over a limit is refused with a reason.
 MAX_METRIC_NAME = 256
@@ -24,10 +33,7 @@ MAX_SERIES_KEY = 4096
 # A message this short cannot hold a label or a key over the limits (a JSON string of n
 # characters takes at least n bytes): the JSON fast path checks only the metric name then.
 SMALL_MESSAGE = MAX_LABEL_NAME
-# Times a calendar can show, with two weeks' margin for time zones and step arithmetic
-# (historical series such as yearly river levels reach far before 1970).
-MIN_TIME = -62134387200.0  # 0001-01-15T00:00:00Z
-MAX_TIME = 253400659200.0  # 9999-12-13T00:00:00Z
+# MIN_TIME and MAX_TIME (times a calendar can show) live in core.points, shared with the engine.
 
 
 class RecordError(ValueError):

@@ -28,13 +28,13 @@ import numpy as np
 
 from streamdet.config import Config, Rule
 from streamdet.core import breach_events, peer_groups
-from streamdet.core.columns import ColumnState, row_numbers
+from streamdet.core.columns import ColumnState, per_rule, row_numbers
 from streamdet.core.confirm import BreachState
 from streamdet.core.evidence import EvidenceWindow, combined_surprise, critical_statistic
 from streamdet.core.forecast import StepContext
 from streamdet.core.forecast.base import as_index
 from streamdet.core.judge import TemporalJudge
-from streamdet.core.points import PointBatch
+from streamdet.core.points import MAX_TIME, MIN_TIME, PointBatch, shorten
 from streamdet.core.relevel import RunTracker
 from streamdet.core.series import SeriesTable
 from streamdet.core.snapshot import (  # noqa: F401 (SNAPSHOT_VERSION, SnapshotError: re-exported)
@@ -48,10 +48,19 @@ from streamdet.core.snapshot import (  # noqa: F401 (SNAPSHOT_VERSION, SnapshotE
     decode_snapshot,
     encode_snapshot,
 )
-from streamdet.core.steps import AGGREGATION_CODES, ClosedSteps, Steps, running_clock
-from streamdet.events import BreachEvent
+from streamdet.core.steps import (
+    AGGREGATION_CODES,
+    ClosedSteps,
+    Steps,
+    running_clock,
+    series_running_clock,
+)
+from streamdet.events import BreachEvent, rfc3339
 
 AUTO_STEP_POINTS = 6
+DROPPED_NOTES = 20  # dropped points described per ingest call (the rest are only counted)
+DROP_REASONS = {"late_series": "late after their series moved on",
+                "late_grace": "late after the partition's grace", "bad_time": "with an impossible time"}
 NICE_STEPS = (1, 2, 5, 10, 15, 20, 30, 60, 120, 300, 600, 900, 1200, 1800, 3600, 7200, 10800,
               21600, 43200, 86400, 604800)
 
@@ -89,6 +98,33 @@ class StepLog:
         return {n: np.concatenate([p[i] for p in self.parts]) for i, n in enumerate(names)}
 
 
+@dataclass(frozen=True, slots=True)
+class DroppedPoint:
+    """A point the engine dropped, and why: ``late_series`` (its series had moved past the
+    step's end plus lateness), ``late_grace`` (the partition's event time had passed the step's
+    end plus grace) or ``bad_time`` (not a time a calendar can show).
+
+    ``behind`` is how far the point's time is behind the clock that closed its step, and
+    ``allowed`` the lateness or grace that clock had to exceed.
+    """
+
+    key: str
+    time: float
+    reason: str
+    behind: float = math.nan
+    allowed: float = math.nan
+
+    def __str__(self) -> str:
+        key = shorten(self.key, 200)
+        if self.reason == "bad_time":
+            return f"{key}: time {self.time!r} is not a finite number within the years 1 to 9999"
+        whose = ("its series' newest point" if self.reason == "late_series"
+                 else "the partition's newest point")
+        allowance = "lateness" if self.reason == "late_series" else "grace"
+        return (f"{key}: late point at {rfc3339(self.time)} dropped, its step had closed: "
+                f"{self.behind:.0f} s behind {whose} ({allowance} {self.allowed:g} s after the step's end)")
+
+
 class Engine:
     """Online detection for every series the configured rules select."""
 
@@ -123,11 +159,17 @@ class Engine:
         self.rule_unusual = np.array([r.unusual_rarity for r in rules])
         self.any_auto = any(r.step is None for r in rules)
         self.any_lateness = any(r.lateness > 0 for r in rules)
+        # Never beyond idle_ttl: a quiet series' last step is judged before it is forgotten.
+        self.rule_grace = np.array([min(r.grace, config.series.idle_ttl) for r in rules])
+        self.one_grace = bool((self.rule_grace == self.rule_grace[0]).all())
         self.any_counter = bool(self.rule_counter.any())
         # Rules whose hours follow a local time zone (index -> zone); empty: all UTC.
         self.zones = {i: zoneinfo.ZoneInfo(r.timezone) for i, r in enumerate(rules) if r.timezone != "UTC"}
         self.clock = -math.inf
         self.counters: Counter[str] = Counter()
+        # Points the last ingest dropped: a few described, all counted by reason (for logs).
+        self.dropped: list[DroppedPoint] = []
+        self.dropped_counts: Counter[str] = Counter()
         self.pending: dict[int, list[tuple[float, float]]] = {}
         self.next_eviction = -math.inf
         self.log = StepLog() if record_steps else None
@@ -184,17 +226,29 @@ class Engine:
                 events.append(ev)
             self.pending.pop(row, None)
         self.table.release(idle)
+        self.steps.k[idle] = -1  # a freed row keeps no open step
         self.counters["series_evicted"] += idle.shape[0]
         return events
 
     # ------------------------------------------------------------ ingest
 
     def ingest(self, batch: PointBatch) -> list[BreachEvent]:
-        """Take a batch of points (in arrival order); return the events its closed steps decided."""
+        """Take a batch of points (in arrival order); return the events its closed steps decided.
+
+        Points dropped as late or with an impossible time are counted by reason in
+        ``counters`` and, for this call, in ``dropped_counts``; the first few are described in
+        ``dropped``.
+        """
         n_in = len(batch)
         self.counters["points_in"] += n_in
+        self.dropped = []
+        self.dropped_counts = Counter()
         if n_in == 0:
             return []
+        if not (batch.time.min() >= MIN_TIME and batch.time.max() <= MAX_TIME):  # NaN fails too
+            batch = self._drop_bad_times(batch)
+            if len(batch) == 0:
+                return []
         rows, no_rule, over_cap = self.table.resolve(batch, self._on_new)
         self.counters["points_no_rule"] += no_rule
         self.counters["points_series_limit"] += over_cap
@@ -203,10 +257,15 @@ class Engine:
         if rows.shape[0] == 0:
             return []
         tab = self.table
+        # Event time per series (its newest point, kept in last_seen) and per partition (the
+        # engine's clock), each as it stood when the point arrived: running maxima in arrival
+        # order, so batching cannot change which points are late.
         unique_rows = np.bincount(rows).max() == 1
+        series_seen = tab.last_seen[rows]
         if unique_rows:
-            tab.last_seen[rows] = np.maximum(tab.last_seen[rows], t)
+            tab.last_seen[rows] = np.maximum(series_seen, t)
         else:
+            series_seen = series_running_clock(series_seen, rows, t)
             np.maximum.at(tab.last_seen, rows, t)
         seen_clock = running_clock(self.clock, t)
         self.clock = max(self.clock, float(t.max()))
@@ -217,14 +276,18 @@ class Engine:
             if unknown.any():
                 released = self._buffer_auto(rows[unknown], t[unknown], v[unknown])
                 known = ~unknown
-                rows, t, v, step, seen_clock = (rows[known], t[known], v[known], step[known],
-                                                seen_clock[known])
+                rows, t, v, step, seen_clock, series_seen = (
+                    rows[known], t[known], v[known], step[known], seen_clock[known], series_seen[known])
         k = np.floor(t / step).astype(np.int64)
         end = (k + 1) * step
-        late = (end + tab.lateness[rows] if self.any_lateness else end) <= seen_clock
+        lateness = tab.lateness[rows] if self.any_lateness else 0.0
+        grace = self._grace_of(rows)
+        # Late: the point's own step had closed for its series when it arrived.
+        late = end <= np.maximum(series_seen - lateness if self.any_lateness else series_seen,
+                                 seen_clock - grace)
         n_late = int(np.count_nonzero(late))
         if n_late:
-            self.counters["points_late"] += n_late
+            self._note_late(late, rows, t, end, series_seen, seen_clock, lateness, grace)
             keep = ~late
             rows, t, v, k = rows[keep], t[keep], v[keep], k[keep]
         seq = np.arange(rows.shape[0], dtype=np.int64)
@@ -249,15 +312,62 @@ class Engine:
             k = np.floor(t / tab.step[rows]).astype(np.int64)
         # Dropping late points keeps rows unique; added held or rate points may not.
         closed = self.steps.merge(rows, k, t, v, seq, self._agg_of, tab.step.__getitem__,
-                                  tab.lateness.__getitem__, self.clock,
-                                  unique=None if reorder else unique_rows)
+                                  self._close_limit, unique=None if reorder else unique_rows)
         return self._judge_all(closed) + self._evict()
 
+    def _close_limit(self, rows: np.ndarray | slice) -> np.ndarray:
+        """Per row: its steps ending at or before this are closed. The series' own clock minus
+        lateness, or the partition's clock minus grace, whichever is later."""
+        tab = self.table
+        own = tab.last_seen[rows] - tab.lateness[rows] if self.any_lateness else tab.last_seen[rows]
+        return np.maximum(own, self.clock - self._grace_of(rows))
+
+    def _grace_of(self, rows: np.ndarray | slice) -> np.ndarray | float:
+        """Grace per row; one number when all rules share it (no gather)."""
+        if self.one_grace:
+            return float(self.rule_grace[0])
+        return per_rule(self.rule_grace, self.table.rule[rows])
+
+    def _drop_bad_times(self, batch: PointBatch) -> PointBatch:
+        """Drop (count, describe) points whose time is NaN, infinite or beyond the calendar."""
+        t = batch.time
+        bad = ~((t >= MIN_TIME) & (t <= MAX_TIME))
+        idx = np.flatnonzero(bad)
+        self.counters["points_bad_time"] += idx.shape[0]
+        self.dropped_counts["bad_time"] += idx.shape[0]
+        for i in idx[:DROPPED_NOTES].tolist():
+            self.dropped.append(DroppedPoint(batch.keys[i], float(t[i]), "bad_time"))
+        return batch.take(np.flatnonzero(~bad))
+
+    def _note_late(self, late, rows, t, end, series_seen, seen_clock, lateness, grace) -> None:
+        """Count late points by reason and describe the first few (series key, how far behind)."""
+        idx = np.flatnonzero(late)
+        lat = lateness[idx] if isinstance(lateness, np.ndarray) else np.full(idx.shape[0], lateness)
+        gr = grace[idx] if isinstance(grace, np.ndarray) else np.full(idx.shape[0], grace)
+        by_series = end[idx] <= series_seen[idx] - lat
+        n_series = int(np.count_nonzero(by_series))
+        self.counters["points_late"] += idx.shape[0]
+        self.counters["points_late_series"] += n_series
+        self.counters["points_late_grace"] += idx.shape[0] - n_series
+        for reason, n in (("late_series", n_series), ("late_grace", idx.shape[0] - n_series)):
+            if n:
+                self.dropped_counts[reason] += n
+        room = DROPPED_NOTES - len(self.dropped)
+        for j in range(min(room, idx.shape[0])):
+            i = int(idx[j])
+            own = bool(by_series[j])
+            clock = series_seen[i] if own else seen_clock[i]
+            self.dropped.append(DroppedPoint(
+                self.table.keys[int(rows[i])] or "?", float(t[i]),
+                "late_series" if own else "late_grace", float(clock - t[i]),
+                float(lat[j] if own else gr[j])))
+
     def advance(self, clock: float) -> list[BreachEvent]:
-        """Move event time forward without points (an idle input): closes steps now due."""
-        if clock <= self.clock:
+        """Move the partition's event time forward without points (an idle input): closes the
+        steps it puts past their end plus grace."""
+        if not clock > self.clock:  # never back, and never to NaN
             return []
-        self.clock = clock
+        self.clock = float(clock)
         return self._judge_all(ClosedSteps.empty()) + self._evict()
 
     def finish(self) -> list[BreachEvent]:
@@ -335,7 +445,7 @@ class Engine:
         tab = self.table
         n = tab.n
         # NaN steps (still being inferred) have no open step, so compare false and never close.
-        due = self.steps.due(self.clock, n, self._agg_of, tab.step[:n], tab.lateness[:n])
+        due = self.steps.due(self._close_limit(slice(0, n)), n, self._agg_of, tab.step[:n])
         if len(due):
             rows = np.concatenate([closed.rows, due.rows])
             k = np.concatenate([closed.k, due.k])

@@ -190,7 +190,7 @@ class PeerJudge:
             return []
         tab = self.engine.table
         live = tab.rule[pr] >= 0
-        ready = live & ((pk + 1) * tab.step[pr] + tab.lateness[pr] <= clock)
+        ready = live & ((pk + 1) * tab.step[pr] <= self._complete_until(pr, live))
         if not ready.any():
             self.state.pending = (pr[live], pk[live], py[live])
             return []
@@ -205,6 +205,36 @@ class PeerJudge:
             at = k == kk
             events.extend(self._judge_step(rows[at], kk, y[at], gid[at]))
         return events
+
+    def _complete_until(self, pending_rows: np.ndarray, live: np.ndarray) -> np.ndarray:
+        """Per pending row: its group's steps ending at or before this are closed for every
+        member (the earliest of the members' close limits: each series closes its steps by its
+        own clock, or by the partition's clock minus grace). A group is judged only when
+        complete, so what it sees does not depend on batching; a member that went quiet holds
+        its group back for at most ``grace``."""
+        pg = np.full(pending_rows.shape[0], -1, np.int64)
+        pg[live] = self._gids(pending_rows[live])
+        tab = self.engine.table
+        n = tab.n
+        rule = tab.rule[:n]
+        members = np.flatnonzero(rule >= 0)
+        members = members[self.rule_has[rule[members]] & (self.state.derived[members] == 0)]
+        gid = self._gids(members)
+        m = gid >= 0
+        limit = np.full(len(self.group_info), -np.inf)
+        if m.any():
+            order = np.argsort(gid[m], kind="stable")
+            g = gid[m][order]
+            lim = self.engine._close_limit(members[m][order])
+            starts = np.flatnonzero(np.r_[True, g[1:] != g[:-1]])
+            limit = np.full(len(self.group_info), np.inf)
+            limit[g[starts]] = np.minimum.reduceat(lim, starts)
+        out = np.full(pending_rows.shape[0], -np.inf)
+        has = pg >= 0
+        out[has] = limit[pg[has]]
+        # a pending row outside every group is dropped by the caller once ready: make it ready
+        out[live & ~has] = np.inf
+        return out
 
     def _judge_step(self, rows: np.ndarray, k: int, y: np.ndarray, gid: np.ndarray) -> list:
         """One step of every group with members in it (members are unique rows here)."""

@@ -15,6 +15,11 @@ import numpy as np
 Labels = tuple[tuple[str, str], ...]
 COUNTER = "counter"
 CACHE_LIMIT = 500_000  # raw record identities remembered by a shared PointBuilder cache
+# Times a calendar can show, with two weeks' margin for time zones and step arithmetic
+# (historical series such as yearly river levels reach far before 1970). Codecs refuse
+# records outside them; the engine drops (and counts) points outside them.
+MIN_TIME = -62134387200.0  # 0001-01-15T00:00:00Z
+MAX_TIME = 253400659200.0  # 9999-12-13T00:00:00Z
 
 
 def _escape_label_value(value: str) -> str:

@@ -1,11 +1,13 @@
 """Bucketing points into steps per series: aggregation, lateness, counters to rates.
 
-Each series keeps at most two open steps (lateness is shorter than a step). A step
-closes when event time -- the largest point time the engine has seen, the *clock* --
-passes its end plus ``lateness``. A point whose step end plus lateness the clock had
-already passed when the point arrived is *late* and dropped. Because lateness is judged
-against the clock in arrival order, the outcome does not depend on how points are
-batched: the daemon and replay see the same steps.
+Event time is kept per series. A series' *clock* is the largest time among its own points; the
+engine's (partition's) clock is the largest time among all points. A step of a series closes
+when its series' clock passes the step's end plus ``lateness``, or when the partition's clock
+passes it plus ``grace`` (so a series that went quiet is still judged). A point is *late* only
+when its own series' step had already closed when it arrived; other series never make it late,
+unless they run more than ``grace`` ahead of it. Each series keeps at most two open steps
+(lateness is shorter than a step). Clocks are judged in arrival order with running maxima, so
+the outcome does not depend on how points are batched: the daemon and replay see the same steps.
 """
 
 from __future__ import annotations
@@ -44,6 +46,35 @@ def running_clock(clock: float, t: np.ndarray) -> np.ndarray:
     before[0] = clock
     np.maximum.accumulate(t[:-1], out=before[1:])
     return np.maximum(before, clock)
+
+
+def series_running_clock(before: np.ndarray, rows: np.ndarray, t: np.ndarray) -> np.ndarray:
+    """Clock each point's own series showed on arrival: ``before`` (the series' clock before the
+    batch, per point) or the largest time of the same series' earlier points in the batch.
+
+    >>> series_running_clock(np.array([5.0, 0.0, 5.0, 0.0]), np.array([1, 2, 1, 2]),
+    ...                      np.array([9.0, 3.0, 7.0, 1.0]))
+    array([5., 0., 9., 3.])
+    """
+    n = t.shape[0]
+    if n == 0:
+        return before.copy()
+    order = np.argsort(rows, kind="stable")  # by series, arrival order kept within one
+    r = rows[order]
+    new = np.ones(n, dtype=bool)
+    new[1:] = r[1:] != r[:-1]
+    # A segmented running maximum: times become ranks (ties share one), offset by the group
+    # number so no group's ranks can exceed a later group's.
+    uniq, rank = np.unique(t[order], return_inverse=True)
+    key = (np.cumsum(new) - 1) * uniq.shape[0] + rank
+    run = np.maximum.accumulate(key)
+    excl = np.empty(n, np.int64)
+    excl[0] = -1
+    excl[1:] = run[:-1]
+    prior = np.where(new, -np.inf, uniq[np.where(new, 0, excl) % uniq.shape[0]])
+    out = np.empty(n)
+    out[order] = np.maximum(before[order], prior)
+    return out
 
 
 def _finalise(acc: np.ndarray, cnt: np.ndarray, code: np.ndarray) -> np.ndarray:
@@ -94,18 +125,19 @@ class Steps(ColumnState):
 
     # ------------------------------------------------------------ stepping
 
-    def merge(self, rows, k, t, v, seq, agg_of_row, step_of_row, lateness_of_row,
-              clock: float, unique: bool | None = None) -> ClosedSteps:
-        """Merge accepted points into open steps; return the steps that close at ``clock``.
+    def merge(self, rows, k, t, v, seq, agg_of_row, step_of_row, limit_of_row,
+              unique: bool | None = None) -> ClosedSteps:
+        """Merge accepted points into open steps; return the steps that close now.
 
-        ``unique`` says whether each row appears at most once (None: find out).
+        ``limit_of_row(rows)`` is each row's close limit: a step ending at or before it is
+        closed. ``unique`` says whether each row appears at most once (None: find out).
         """
         if rows.shape[0] == 0:
             return ClosedSteps.empty()
         if unique is None:
             unique = bool(np.bincount(rows).max() == 1)
         if unique and self._merge_single(rows, k, t, v, agg_of_row(rows)):
-            return ClosedSteps.empty()  # closing is left to due(), which sees the same clock
+            return ClosedSteps.empty()  # closing is left to due(), which sees the same limits
         present = np.unique(rows)
         parts_r, parts_k, parts_acc, parts_cnt, parts_t, parts_seq = [rows], [k], [v], [
             np.ones(rows.shape[0], np.int64)], [t], [seq]
@@ -143,7 +175,7 @@ class Steps(ColumnState):
         g_acc = np.where(code == 4, acc[ends], g_acc)
         g_t = tt[ends]
         step = step_of_row(gr)
-        closed = (gk + 1) * step + lateness_of_row(gr) <= clock
+        closed = (gk + 1) * step <= limit_of_row(gr)
         # Write the open ones back: first open step of a row to slot 0, second to slot 1.
         o = ~closed
         orow = gr[o]
@@ -184,19 +216,18 @@ class Steps(ColumnState):
         self.k[rows, slot] = k
         return True
 
-    def due(self, clock: float, n: int, agg, step: np.ndarray, lateness: np.ndarray) -> ClosedSteps:
-        """Close open steps of rows ``0..n-1`` whose end plus lateness the clock has passed.
+    def due(self, limit: np.ndarray, n: int, agg, step: np.ndarray) -> ClosedSteps:
+        """Close open steps of rows ``0..n-1`` that end at or before the row's ``limit``.
 
-        ``agg(rows)`` gives the aggregation code of rows; ``step`` and ``lateness`` are per row.
+        ``agg(rows)`` gives the aggregation code of rows; ``step`` and ``limit`` are per row.
         """
         k0 = self.k[:n, 0]
-        ends0 = (k0 + 1) * step + lateness
-        due0 = (k0 >= 0) & (ends0 <= clock)
+        due0 = (k0 >= 0) & ((k0 + 1) * step <= limit)
         if not due0.any():
             return ClosedSteps.empty()
         rows = np.flatnonzero(due0)
         k1 = self.k[rows, 1]
-        due1 = (k1 >= 0) & ((k1 + 1) * step[rows] + lateness[rows] <= clock)
+        due1 = (k1 >= 0) & ((k1 + 1) * step[rows] <= limit[rows])
         out_r = [rows, rows[due1]]
         out_k = [k0[rows], k1[due1]]
         code = agg(rows)

@@ -32,7 +32,7 @@ from streamdet.alerting.routing import Encoder
 from streamdet.codecs import TimeRules
 from streamdet.codecs.readers import MessageReader
 from streamdet.config import Config
-from streamdet.core.engine import Engine, SnapshotError, StateChangeError
+from streamdet.core.engine import DROP_REASONS, Engine, SnapshotError, StateChangeError
 from streamdet.core.points import DecodeError, KeyCache, PointBatch, cache_limit, shorten
 from streamdet.daemon.checkpointer import CheckpointWriter, write_checkpoints
 from streamdet.daemon.faults import FaultPlan
@@ -46,7 +46,7 @@ log = logging.getLogger("streamdet.daemon")
 TP = tuple[str, int]
 _COUNTER_METRICS = ("points_accepted", "points_late",  # engine counter = metric attribute
                     "peer_groups_judged", "peer_members_judged")
-_DROP_REASONS = ("points_no_rule", "points_series_limit", "counter_samples_dropped")
+_DROP_REASONS = ("points_no_rule", "points_series_limit", "counter_samples_dropped", "points_bad_time")
 
 
 class StartupError(RuntimeError):
@@ -320,6 +320,8 @@ class Daemon:
             part.key_cache.settle(part.engine.table.knows)
             self.faults.hit("ingest")  # test-only (STREAMDET_FAULT): state moved, offset not yet
             self._count(part)
+            if part.engine.dropped:
+                self._log_dropped(key, part.engine)
             self.sink.send(events, time.monotonic())
             part.next_offset = items[-1].offset() + 1
             part.dirty = True
@@ -343,6 +345,14 @@ class Daemon:
         ]
         self.sink.dead_letter(msg.value() or b"", msg.key(), headers,
                               f"{msg.topic()}/{msg.partition()}@{msg.offset()}")
+
+    def _log_dropped(self, key: TP, engine: Engine) -> None:
+        """One line per interval about points the engine dropped (late, impossible time):
+        the first one's series key and how far behind it was, and the batch's counts."""
+        counts = ", ".join(f"{n} {DROP_REASONS[reason]}"
+                           for reason, n in sorted(engine.dropped_counts.items()) if n)
+        self._log.log(logging.WARNING, "dropped point(s) on %s:%d (%s); first: %s", *key, counts,
+                      engine.dropped[0], key="dropped point")
 
     def _count(self, part: PartitionState) -> None:
         c = part.engine.counters
