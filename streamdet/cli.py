@@ -20,9 +20,11 @@ def cmd_check(args: argparse.Namespace) -> int:
     """Validate the file as ``run`` would read it: STREAMDET_* variables applied, every daemon
     section checked (ports, state directory, librdkafka properties). Secrets are never printed."""
     from streamdet.daemon.settings import load_with_environment
+    from streamdet.shadow.settings import parse_shadow
 
     try:
         cfg, _settings = load_with_environment(args.config)
+        parse_shadow(cfg)
     except ConfigError as exc:
         print(f"{args.config}: {len(exc.problems)} problem(s)", file=sys.stderr)
         for p in exc.problems:
@@ -278,8 +280,15 @@ def cmd_run(args: argparse.Namespace) -> int:
         print(str(exc), file=sys.stderr)
         return 2
     setup_logging(args.log_format or settings.log_format, settings.log_level)
+    from streamdet.shadow.settings import parse_shadow
+
+    try:
+        parse_shadow(cfg)
+    except ConfigError as exc:
+        print(str(exc), file=sys.stderr)
+        return 2
     daemon = Daemon(cfg, settings, metrics=Metrics(CollectorRegistry()), events_file=args.events_file,
-                    fresh_partitions=args.fresh_partition or ())
+                    fresh_partitions=args.fresh_partition or (), shadow=True if args.shadow else None)
     return daemon.run()
 
 
@@ -304,6 +313,9 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--fresh-partition", action="append", type=_partition, metavar="TOPIC:PARTITION",
                    help="discard that partition's checkpoint and start it fresh (repeatable)")
     r.add_argument("--log-format", choices=("text", "json"), help="log format (default: logging.format)")
+    r.add_argument("--shadow", action="store_true",
+                   help="shadow mode: events to shadow.topic marked shadow=true, compared with "
+                        "existing alerts")
     r.set_defaults(func=cmd_run)
     d = sub.add_parser("demo", help="a fictional shop's metrics through a local broker and the daemon")
     d.add_argument("--out", default="demo-out", help="where plots and demo state go")

@@ -59,7 +59,8 @@ class Daemon:
 
     def __init__(self, config: Config, settings: DaemonSettings, *, metrics: Metrics,
                  store: StateStore | None = None, events_file: str | None = None,
-                 fresh_partitions: Iterable[TP] = (), log_interval: float = 10.0) -> None:
+                 fresh_partitions: Iterable[TP] = (), log_interval: float = 10.0,
+                 shadow: bool | None = None) -> None:
         self.config = config
         self.settings = settings
         self.metrics = metrics
@@ -78,6 +79,13 @@ class Daemon:
         self.consumer: Consumer | None = None
         self.sink: Sink | None = None
         self.health_port: int | None = None
+        # --- shadow mode (streamdet/shadow): None when off; `shadow` overrides the config's switch
+        from streamdet.shadow.settings import ShadowSettings, parse_shadow
+
+        self.shadow_settings = parse_shadow(config)
+        if shadow is not None:
+            self.shadow_settings = self.shadow_settings.on() if shadow else ShadowSettings()
+        self.shadow = None
 
     # ------------------------------------------------------------ configuration
 
@@ -107,9 +115,19 @@ class Daemon:
             signal.signal(signal.SIGTERM, self.stop)
             signal.signal(signal.SIGINT, self.stop)
         server = None
+        output_topic, extensions = self.settings.output_topic, None
+        if self.shadow_settings.enabled:  # --- shadow mode
+            from streamdet.shadow.runtime import EXTENSIONS, ShadowRuntime
+
+            output_topic, extensions = self.shadow_settings.topic, EXTENSIONS
+            self.shadow = ShadowRuntime(self.shadow_settings, registry=self.metrics.registry,
+                                        state_dir=self.settings.state_dir, consumer_conf=self.consumer_conf())
+            log.info("shadow mode: events to %s, alert webhook on %s",
+                     self.events_file or self.shadow_settings.topic, self.shadow_settings.webhook_path)
         if health:
             host, port = self.settings.health_host_port
-            server = HealthServer(self.metrics, self.ready, host, port).start()
+            routes = self.shadow.routes() if self.shadow else None
+            server = HealthServer(self.metrics, self.ready, host, port, routes).start()
             self.health_port = server.port
             log.info("health on http://%s:%d (/metrics, /healthz, /readyz)", host, server.port)
         log.info("consuming %s from %s as group %s; librdkafka options %s, consumer %s, producer %s",
@@ -117,9 +135,9 @@ class Daemon:
                  self.settings.group_id, redacted(self.settings.client), redacted(self.settings.consumer),
                  redacted(self.settings.producer))
         self.sink = Sink(metrics=self.metrics, source=self.settings.source,
-                         producer_conf=self.producer_conf(), output_topic=self.settings.output_topic,
+                         producer_conf=self.producer_conf(), output_topic=output_topic,
                          dead_letter_topic=self.settings.dead_letter_topic, events_file=self.events_file,
-                         log_interval=self.log_interval)
+                         log_interval=self.log_interval, extensions=extensions)
         self.consumer = Consumer(self.consumer_conf())
         self.consumer.subscribe(list(self.settings.input_topics), on_assign=self._on_assign,
                                 on_revoke=self._on_revoke, on_lost=self._on_lost)
@@ -133,6 +151,8 @@ class Daemon:
                 now = time.monotonic()
                 if now - self._last_checkpoint >= self.settings.checkpoint_interval:
                     self.checkpoint(list(self.parts))
+                if self.shadow:  # --- shadow mode: periodic summary
+                    self.shadow.tick([p.engine for p in self.parts.values()], self.sink.send_document)
                 if now - self._last_probe >= 2.0:
                     self._probe()
                     self._update_gauges()
@@ -145,6 +165,12 @@ class Daemon:
             log.info("stopping: flushing events, checkpointing, committing")
             if code == 0:
                 self.checkpoint(list(self.parts), timeout=5.0)
+            if self.shadow:  # --- shadow mode
+                self.shadow.stop()
+                if code == 0:
+                    self.shadow.tick([p.engine for p in self.parts.values()], self.sink.send_document,
+                                     force=True)
+                    self.shadow.save()
             self.sink.close(timeout=2.0)
             try:
                 self.consumer.close()
@@ -261,6 +287,8 @@ class Daemon:
             events = part.engine.ingest(self._decode(key, items, part, rules))
             self._count(part)
             self.sink.send(events, time.monotonic())
+            if self.shadow:  # --- shadow mode
+                self.shadow.observe(events)
             part.next_offset = items[-1].offset() + 1
             part.dirty = True
         self.metrics.batch_seconds.observe(time.monotonic() - started)
@@ -316,6 +344,8 @@ class Daemon:
             self.store.save(Checkpoint(key[0], key[1], part.next_offset, part.engine.snapshot()))
             part.dirty = False
             offsets.append(TopicPartition(key[0], key[1], part.next_offset))
+        if self.shadow:  # --- shadow mode: the comparison state goes with the checkpoint
+            self.shadow.save()
         self.metrics.checkpoints.inc(len(offsets))
         self._checkpoint_done = time.monotonic()
         if offsets:

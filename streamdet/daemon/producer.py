@@ -18,9 +18,10 @@ import logging
 import os
 import time
 from collections import deque
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from typing import IO
 
+import orjson
 from confluent_kafka import KafkaError, KafkaException, Producer
 
 from streamdet.daemon.health import Metrics
@@ -56,8 +57,10 @@ class Sink:
 
     def __init__(self, *, metrics: Metrics, source: str, producer_conf: dict[str, str] | None,
                  output_topic: str | None, dead_letter_topic: str | None,
-                 events_file: str | None = None, log_interval: float = 10.0) -> None:
+                 events_file: str | None = None, log_interval: float = 10.0,
+                 extensions: Mapping[str, object] | None = None) -> None:
         self.metrics = metrics
+        self.extensions = dict(extensions or {})  # CloudEvents extension attributes (shadow mode)
         self.source = source
         self.output_topic = output_topic
         self.dead_letter_topic = dead_letter_topic
@@ -76,7 +79,7 @@ class Sink:
     def send(self, events: Sequence[BreachEvent], decided_at: float) -> None:
         if self.file is not None:
             for e in events:
-                self.file.write(e.to_json(self.source) + b"\n")
+                self.file.write(self._encode(e) + b"\n")
                 self.metrics.events_out.labels(e.type).inc()
                 self.metrics.delivery_delay.observe(max(0.0, time.monotonic() - decided_at))
             return
@@ -84,9 +87,23 @@ class Sink:
             return
         headers = [("content-type", CONTENT_TYPE.encode())]
         for e in events:
-            self._produce(_Message(self.output_topic, e.series.encode(), e.to_json(self.source), headers,
+            self._produce(_Message(self.output_topic, e.series.encode(), self._encode(e), headers,
                                    kind="event", source=f"{e.type} {e.id}", event_type=e.type,
                                    decided_at=decided_at))
+
+    def _encode(self, e: BreachEvent) -> bytes:
+        if not self.extensions:
+            return e.to_json(self.source)
+        return orjson.dumps({**e.to_cloudevent(self.source), **self.extensions})
+
+    def send_document(self, key: bytes, doc: Mapping[str, object]) -> None:
+        """Any other CloudEvent (a shadow summary) to the same place as the events."""
+        value = orjson.dumps(doc)
+        if self.file is not None:
+            self.file.write(value + b"\n")
+        elif self.output_topic is not None and self.producer is not None:
+            self._produce(_Message(self.output_topic, key, value, [("content-type", CONTENT_TYPE.encode())],
+                                   kind="event", source=f"{doc.get('type')} {doc.get('id')}"))
 
     def dead_letter(self, value: bytes, key: bytes | None, headers: Headers, source: str = "") -> None:
         """Send an undecodable message on; ``source`` (topic/partition@offset) is for the log."""
