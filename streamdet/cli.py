@@ -1,4 +1,5 @@
-"""Command line: ``streamdet run``, ``replay``, ``evaluate``, ``check`` and ``demo``."""
+"""Command line: ``streamdet run``, ``replay``, ``evaluate``, ``check``, ``shadow report``, ``warm``
+and ``demo``."""
 
 from __future__ import annotations
 
@@ -338,6 +339,23 @@ def build_parser() -> argparse.ArgumentParser:
     v.add_argument("--format", choices=("csv", "json", "influx"),
                    help="input format (default: from each file's extension)")
     v.set_defaults(func=cmd_evaluate)
+    sh = sub.add_parser("shadow", help="compare streamdet with the alerts you already have")
+    shsub = sh.add_subparsers(dest="shadow_command", required=True)
+    rep = shsub.add_parser("report", help="tables per rule and series, and an HTML timeline page",
+                           epilog="without --events/--alerts it reads the daemon's comparison state "
+                                  "(shadow-comparison.json in state.dir); exit codes: 0 done, 2 bad input")
+    rep.add_argument("--config", "-c", help="YAML config (shadow.match, shadow.slack, state.dir)")
+    rep.add_argument("--since", default="7d", help="how far back from the end to compare (7d)")
+    rep.add_argument("--until", help="end of the comparison (default: the latest time seen)")
+    rep.add_argument("--events", nargs="+", metavar="FILE", help="streamdet events (CloudEvents JSON lines)")
+    rep.add_argument("--alerts", nargs="+", metavar="FILE",
+                     help="existing alerts: Alertmanager webhook payloads, one per line")
+    rep.add_argument("--data", nargs="+", metavar="FILE", help="metric history, to draw the observed values")
+    rep.add_argument("--format", choices=("csv", "json", "influx"), help="format of the --data files")
+    rep.add_argument("--slack", help="override shadow.slack (15m)")
+    rep.add_argument("--html", metavar="FILE", help="write the self-contained HTML page here")
+    rep.set_defaults(func=lambda a: __import__("streamdet.shadow.report", fromlist=["run_report"])
+                     .run_report(a))
     c = sub.add_parser("check", help="validate a config file (exit code 2 on errors)")
     c.add_argument("config")
     c.set_defaults(func=cmd_check)

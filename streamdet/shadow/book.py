@@ -77,16 +77,22 @@ class ShadowBook:
         return unmatched
 
     def add_events(self, events: Sequence[BreachEvent]) -> None:
+        for e in events:
+            self.add_event(type_=e.type, id_=e.id, series=e.series, metric=e.metric, labels=e.labels,
+                           rule=e.rule, time=e.time, started=e.started, opened_id=e.opened_id)
+
+    def add_event(self, *, type_: str, id_: str, series: str, metric: str, labels: Mapping[str, str],
+                  rule: str, time: float, started: float, opened_id: str | None) -> None:
+        """One opened or closed event (also as read back from an events file)."""
         with self.lock:
-            for e in events:
-                self.known.setdefault(e.series, (e.metric, dict(e.labels), e.rule))
-                mine = self.ours.setdefault(e.series, {})
-                if e.type == OPENED:
-                    mine.setdefault(e.id, [e.time, None])
-                elif e.type == CLOSED and e.opened_id is not None:
-                    interval = mine.setdefault(e.opened_id, [e.started, None])
-                    interval[1] = max(e.time, interval[0])
-                self.latest = max(self.latest, e.time)
+            self.known.setdefault(series, (metric, dict(labels), rule))
+            mine = self.ours.setdefault(series, {})
+            if type_ == OPENED:
+                mine.setdefault(id_, [time, None])
+            elif type_ == CLOSED and opened_id is not None:
+                interval = mine.setdefault(opened_id, [started, None])
+                interval[1] = max(time, interval[0])
+            self.latest = max(self.latest, time)
 
     def add_series(self, series: Iterable[tuple[str, str, Mapping[str, str], str]]) -> None:
         """Known series (key, metric, labels, rule): alerts about them are matched."""
