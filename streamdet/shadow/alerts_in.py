@@ -281,8 +281,9 @@ class AlertTopicReader:
     """Reads webhook payloads from a Kafka topic in a thread; each message is one payload."""
 
     def __init__(self, conf: dict[str, Any], topic: str, accept: Callable[[Parsed], None],
-                 refused: Callable[[str], None], poll_timeout: float = 0.5) -> None:
+                 refused: Callable[[str], None], poll_timeout: float = 0.5, max_body: int = MAX_BODY) -> None:
         self.conf, self.topic, self.accept, self.refused = conf, topic, accept, refused
+        self.max_body = max_body
         self.poll_timeout = poll_timeout
         self._stop = threading.Event()
         self.thread = threading.Thread(target=self._run, name="shadow-alerts", daemon=True)
@@ -310,7 +311,7 @@ class AlertTopicReader:
                         continue
                     where = f"{msg.topic()}/{msg.partition()}@{msg.offset()}"
                     value = msg.value() or b""
-                    if len(value) > MAX_BODY:
+                    if len(value) > self.max_body:
                         self.refused("too_large")
                         log.warning("alert payload %s refused: %d bytes", where, len(value))
                         continue
@@ -320,8 +321,6 @@ class AlertTopicReader:
                         self.refused(exc.code)
                         log.warning("alert payload refused: %s", shorten(str(exc), 200))
                         continue
-                    for _ in parsed.errors:
-                        self.refused("bad_alert")
-                    self.accept(parsed)
+                    self.accept(parsed)  # counts the refused alerts inside
         finally:
             consumer.close()

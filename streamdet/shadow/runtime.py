@@ -79,7 +79,8 @@ class ShadowRuntime:
             group = f"{consumer_conf.get('group.id', 'streamdet')}-shadow-alerts"
             conf = {**consumer_conf, "group.id": group, "enable.auto.commit": True,
                     "partition.assignment.strategy": "range,roundrobin"}
-            self.reader = AlertTopicReader(conf, settings.alerts_topic, self.accept, self.refused).start()
+            self.reader = AlertTopicReader(conf, settings.alerts_topic, self.accept, self.refused,
+                                           max_body=settings.max_body).start()
         self._last_summary = time.monotonic()
 
     # ------------------------------------------------------------ in

@@ -84,3 +84,34 @@ def test_shadow_run_then_shadow_off_keeps_state(broker, tmp_path):
     docs = [parse_cloudevent(m.value()) for m in out]
     assert [d["id"] for d in docs] == [e.id for e in expected[6:]]
     assert all("shadow" not in d for d in docs)
+
+
+def test_alerts_from_a_kafka_topic(broker, tmp_path):
+    from prometheus_client import CollectorRegistry
+
+    from streamdet.config import parse_config
+    from streamdet.shadow.runtime import ShadowRuntime
+    from streamdet.shadow.settings import parse_shadow
+
+    topic = unique("alerts")
+    broker.create_topics(topic)
+    good = orjson.dumps({"version": "4", "receiver": "r", "status": "resolved",
+                         "alerts": [their("FlowLow", 1649000000.0, 1649003600.0, "k1")]})
+    broker.produce(topic, [(None, b"{broken"), (None, b"x" * 10_000), (None, good),
+                           (None, orjson.dumps({"version": "4", "status": "firing", "alerts": [{"status": "?"}]}))])
+    registry = CollectorRegistry()
+    cfg = parse_config({"shadow": {"alerts_topic": topic, "max_body": 4096, "match": {"labels": ["site"]}}})
+    rt = ShadowRuntime(parse_shadow(cfg), registry=registry, state_dir=tmp_path,
+                       consumer_conf={"bootstrap.servers": broker.bootstrap, "group.id": unique("g"),
+                                      "auto.offset.reset": "earliest", "session.timeout.ms": 6000})
+    get = registry.get_sample_value
+    try:
+        assert wait_for(lambda: (get("streamdet_shadow_payloads_bad_total", {"reason": "bad_alert"}) or 0) == 1,
+                        timeout=30)
+    finally:
+        rt.stop()
+    assert get("streamdet_shadow_alerts_in_total", {"status": "resolved"}) == 1
+    assert get("streamdet_shadow_payloads_bad_total", {"reason": "invalid_json"}) == 1
+    assert get("streamdet_shadow_payloads_bad_total", {"reason": "too_large"}) == 1
+    (a,) = rt.book.alerts.values()
+    assert a.start == 1649000000.0 and a.end == 1649003600.0 and a.labels["site"] == "s0"
