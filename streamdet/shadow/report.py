@@ -288,7 +288,7 @@ def run_report(args) -> int:
         except FileNotFoundError:
             return fail(f"{state}: no comparison state; run the daemon in shadow mode or pass "
                         "--events and --alerts files")
-        except (OSError, ValueError, KeyError, TypeError) as exc:
+        except (OSError, ValueError, KeyError, TypeError, IndexError, AttributeError) as exc:
             return fail(f"{state}: unusable comparison state ({exc})")
     values: dict[str, tuple[np.ndarray, np.ndarray]] = {}
     if args.data:

@@ -97,7 +97,7 @@ class ShadowRuntime:
             return ShadowBook(match=s.match, slack=s.slack)
         try:
             return ShadowBook.from_dict(doc, match=s.match, slack=s.slack)
-        except (ValueError, KeyError, TypeError, IndexError) as exc:
+        except (ValueError, KeyError, TypeError, IndexError, AttributeError) as exc:
             log.error("%s: unusable shadow comparison state (%s); starting the comparison afresh",
                       self.path, exc)
             return ShadowBook(match=s.match, slack=s.slack)

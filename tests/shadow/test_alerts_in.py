@@ -199,3 +199,18 @@ def test_receiver_keeps_good_payloads_and_refuses_bad_ones_with_4xx(tmp_path):
         assert get("streamdet_shadow_payloads_bad_total", {"reason": reason}) == n, reason
     assert get("streamdet_shadow_alerts_unmatched_total") == 2  # no series known yet
     assert len(rt.book.alerts) == 2
+
+
+def test_runtime_state_survives_a_restart_and_a_damaged_file_does_not_stop_it(tmp_path):
+    settings = parse_shadow(parse_config({"shadow": {"match": {"labels": ["site"]}}}))
+    rt = ShadowRuntime(settings, registry=CollectorRegistry(), state_dir=tmp_path)
+    rt.observe([opened()])
+    rt.accept(parse_payload(payload(alert(start="2026-03-02T10:05:00Z", site="north"))))
+    rt.save()
+    again = ShadowRuntime(settings, registry=CollectorRegistry(), state_dir=tmp_path)
+    assert again.book.to_dict() == rt.book.to_dict() and again.book.compare().total.both == 1
+    (tmp_path / "shadow-comparison.json").write_bytes(b'{"version": 1, "alerts": 5}')
+    fresh = ShadowRuntime(settings, registry=CollectorRegistry(), state_dir=tmp_path)
+    assert fresh.book.alerts == {} and fresh.book.ours == {}
+    (tmp_path / "shadow-comparison.json").write_bytes(b"\x00garbage")
+    assert ShadowRuntime(settings, registry=CollectorRegistry(), state_dir=tmp_path).book.alerts == {}
