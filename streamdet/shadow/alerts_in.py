@@ -193,9 +193,10 @@ def read_alert_file(path: str | Path) -> tuple[list[Alert], list[str]]:
 class SeriesMatch:
     """``shadow.match``: which series an alert is about.
 
-    A series matches when it has every label in ``labels`` with the alert's value (the alert
-    must carry them all), and, if the alert's name is in ``metrics``, its metric is the one
-    named there.
+    A series matches when, for every label in ``labels`` that the alert carries, the series has
+    the same value (and the alert carries at least one of them), and, if the alert's name is in
+    ``metrics``, the series' metric is the one named there. So one list can serve alerts about
+    hosts, services and sites alike.
 
     >>> m = SeriesMatch(labels=("host",), metrics={"Slow": "latency"})
     >>> m.matches({"alertname": "Slow", "host": "a"}, "latency", {"host": "a", "path": "/"})
@@ -211,11 +212,15 @@ class SeriesMatch:
         want = self.metrics.get(alert_labels.get("alertname", ""))
         if want is not None and want != metric:
             return False
+        compared = 0
         for name in self.labels:
             value = alert_labels.get(name)
-            if value is None or labels.get(name) != value:
+            if value is None:
+                continue
+            if labels.get(name) != value:
                 return False
-        return True
+            compared += 1
+        return compared > 0
 
     def series_for(self, alert_labels: Mapping[str, str],
                    known: Iterable[tuple[str, str, Mapping[str, str]]]) -> list[str]:

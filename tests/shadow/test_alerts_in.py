@@ -113,8 +113,10 @@ def test_series_match_on_labels_and_alert_name_map():
     assert m.series_for({"alertname": "QueueDeep", "site": "north", "env": "prod"}, known) == ["q1"]
     # an alert name not in the map matches any metric with equal labels
     assert m.series_for({"alertname": "Other", "site": "north", "env": "prod"}, known) == ["q1", "c1"]
-    # an alert without one of the chosen labels matches nothing
-    assert m.series_for({"alertname": "Other", "site": "north"}, known) == []
+    # the chosen labels the alert carries are compared; it must carry at least one
+    assert m.series_for({"alertname": "Other", "site": "north"}, known) == ["q1", "c1"]
+    assert m.series_for({"alertname": "Other", "site": "north", "env": "dev"}, known) == []
+    assert m.series_for({"alertname": "QueueDeep", "region": "eu"}, known) == []
 
 
 def opened(series="queue_depth{site=\"north\"}", t=1772445600.0):
