@@ -348,6 +348,14 @@ def cmd_warm(args: argparse.Namespace) -> int:
     return 0
 
 
+def _demo(args: argparse.Namespace) -> int:
+    from streamdet import demo
+
+    if args.shadow:
+        return demo.run_shadow_demo(args.out, args.bootstrap_servers)
+    return demo.run_demo(args.out, args.bootstrap_servers, args.produce_only)
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="streamdet", description=__doc__)
     sub = parser.add_subparsers(dest="command", required=True)
@@ -377,8 +385,9 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--out", default="demo-out", help="where plots and demo state go")
     d.add_argument("--bootstrap-servers", help="use this Kafka instead of starting the bundled broker")
     d.add_argument("--produce-only", action="store_true", help="only produce the scenario's points")
-    d.set_defaults(func=lambda a: __import__("streamdet.demo", fromlist=["run_demo"]).run_demo(
-        a.out, a.bootstrap_servers, a.produce_only))
+    d.add_argument("--shadow", action="store_true",
+                   help="warm start from the history, then the live day in shadow mode beside made-up alerts")
+    d.set_defaults(func=_demo)
     v = sub.add_parser("evaluate", help="score breaches against labelled incident windows; sweep settings")
     v.add_argument("inputs", nargs="+", help="CSV, JSON lines (.jsonl) or line-protocol (.lp) files")
     v.add_argument("--labels", "-l", required=True,

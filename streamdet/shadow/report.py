@@ -165,7 +165,7 @@ def series_svg(key: str, comparison: Comparison, values: tuple[np.ndarray, np.nd
         parts.append(f'<line class="tick" x1="{xx:.1f}" x2="{xx:.1f}" y1="{PLOT_TOP}" y2="{PLOT_BOTTOM}"/>')
         anchor = "start" if k == 0 else "end" if k == 6 else "middle"
         parts.append(f'<text class="axis" x="{xx:.1f}" y="{H - 1}" text-anchor="{anchor}">'
-                     f"{rfc3339(when)[:16].replace('T', ' ')}</text>")
+                     f"{rfc3339(when)[5:16].replace('T', ' ')}</text>")
     parts.append(f'<text class="lane" x="4" y="{THEIR_Y + 13}">theirs</text>')
     parts.append(f'<text class="lane" x="4" y="{OUR_Y + 13}">ours</text>')
     if t is not None and len(t):
