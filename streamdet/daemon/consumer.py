@@ -121,7 +121,8 @@ class Daemon:
 
             output_topic, extensions = self.shadow_settings.topic, EXTENSIONS
             self.shadow = ShadowRuntime(self.shadow_settings, registry=self.metrics.registry,
-                                        state_dir=self.settings.state_dir, consumer_conf=self.consumer_conf())
+                                        state_dir=self.settings.state_dir, consumer_conf=self.consumer_conf(),
+                                        source=self.settings.source)
             log.info("shadow mode: events to %s, alert webhook on %s",
                      self.events_file or self.shadow_settings.topic, self.shadow_settings.webhook_path)
         if health:

@@ -69,8 +69,9 @@ def summary_document(comparison: Comparison, source: str) -> dict[str, Any]:
 
 class ShadowRuntime:
     def __init__(self, settings: ShadowSettings, *, registry, state_dir: str | Path,
-                 consumer_conf: Mapping[str, Any] | None = None) -> None:
+                 consumer_conf: Mapping[str, Any] | None = None, source: str = "streamdet") -> None:
         self.settings = settings
+        self.source = source  # CloudEvents source of the summaries
         self.metrics = ShadowMetrics(registry)
         self.path = Path(state_dir) / STATE_FILE
         self.book = self.load()
@@ -145,7 +146,7 @@ class ShadowRuntime:
             self.metrics.incidents.labels(inc.kind).inc()
             if inc.lead is not None:
                 self.metrics.lead.observe(inc.lead)
-        send(b"shadow", summary_document(comparison, "streamdet"))
+        send(b"shadow", summary_document(comparison, self.source))
         self.metrics.summaries.inc()
         return comparison
 
