@@ -1,4 +1,5 @@
-"""Command line: ``streamdet run``, ``replay``, ``evaluate``, ``check``, ``tail`` and ``demo``."""
+"""Command line: ``streamdet run``, ``replay``, ``evaluate``, ``check``, ``tail``, ``shadow report``,
+``warm`` and ``demo``."""
 
 from __future__ import annotations
 
@@ -21,9 +22,11 @@ def cmd_check(args: argparse.Namespace) -> int:
     """Validate the file as ``run`` would read it: STREAMDET_* variables applied, every daemon
     section checked (ports, state directory, librdkafka properties). Secrets are never printed."""
     from streamdet.daemon.settings import load_with_environment
+    from streamdet.shadow.settings import parse_shadow
 
     try:
         cfg, settings = load_with_environment(args.config)
+        parse_shadow(cfg)
     except ConfigError as exc:
         print(f"{args.config}: {len(exc.problems)} problem(s)", file=sys.stderr)
         for p in exc.problems:
@@ -345,9 +348,79 @@ def cmd_run(args: argparse.Namespace) -> int:
     setup_logging(args.log_format or settings.log_format, settings.log_level)
     if args.accept_state_changes:
         settings = dataclasses.replace(settings, on_rule_change="drop")
+    from streamdet.shadow.settings import parse_shadow
+
+    try:
+        parse_shadow(cfg)
+    except ConfigError as exc:
+        print(str(exc), file=sys.stderr)
+        return 2
     daemon = Daemon(cfg, settings, metrics=Metrics(CollectorRegistry()), events_file=args.events_file,
-                    fresh_partitions=args.fresh_partition or ())
+                    fresh_partitions=args.fresh_partition or (), shadow=True if args.shadow else None)
     return daemon.run()
+
+
+def cmd_warm(args: argparse.Namespace) -> int:
+    """Build each input partition's state from history; exit 0 done, 2 bad input or broker trouble."""
+    from confluent_kafka import KafkaException
+
+    from streamdet.config import parse_duration
+    from streamdet.daemon.settings import load_with_environment
+    from streamdet.daemon.state_store import LocalStateStore
+    from streamdet.warm import topic_layout, warm_from_files, warm_from_topic
+
+    def fail(msg: str) -> int:
+        print(f"streamdet warm: {msg}", file=sys.stderr)
+        return 2
+
+    try:
+        cfg, settings = load_with_environment(args.config)
+    except ConfigError as exc:
+        return fail(str(exc))
+    if args.topic is None and len(settings.input_topics) != 1:
+        return fail(f"kafka.input_topics has {len(settings.input_topics)} topics; say which with --topic")
+    topic = args.topic or settings.input_topics[0]
+    conf = {k: v for k, v in settings.consumer_properties().items() if k != "partition.assignment.strategy"}
+    conf["group.id"] = f"{settings.group_id}-warm"
+    now = time.time()
+    store = LocalStateStore(settings.state_dir)
+    try:
+        layout = topic_layout(conf, topic)
+        existing = [str(store.path(topic, p)) for p in layout if store.path(topic, p).exists()]
+        if existing and not args.force:
+            return fail(f"checkpoints exist ({', '.join(existing[:3])}); --force replaces them")
+        if args.from_files:
+            result = warm_from_files(cfg, args.from_files, store=store, topic=topic,
+                                     offsets={p: high for p, (_low, high) in layout.items()},
+                                     partitioner=args.partitioner, fmt=args.format, now=now)
+        else:
+            try:
+                since = parse_duration(args.since)
+            except ValueError as exc:
+                return fail(f"--since: {exc}")
+            result = warm_from_topic(cfg, conf, args.from_topic, store=store, topic=topic, since=since,
+                                     now=now, partitioner=args.partitioner)
+    except (RuntimeError, KafkaException) as exc:
+        return fail(str(exc))
+    except OSError as exc:
+        return fail(f"{exc.filename or ''}: cannot read ({exc.strerror or exc})")
+    for e in result.errors[:10]:
+        print(f"warning: bad record {e}", file=sys.stderr)
+    if len(result.errors) > 10:
+        print(f"warning: ... {len(result.errors) - 10} more bad records", file=sys.stderr)
+    print(f"warmed {result.points:,} points in {result.seconds:.2f} s "
+          f"({result.points_per_second:,.0f} points/s); {len(result.errors)} bad record(s) skipped")
+    for p, (series, offset) in sorted(result.partitions.items()):
+        print(f"  {topic}:{p}  {series} series, live from offset {offset}  -> {store.path(topic, p)}")
+    return 0
+
+
+def _demo(args: argparse.Namespace) -> int:
+    from streamdet import demo
+
+    if args.shadow:
+        return demo.run_shadow_demo(args.out, args.bootstrap_servers)
+    return demo.run_demo(args.out, args.bootstrap_servers, args.produce_only, fmt=args.format)
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -376,6 +449,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="restore checkpoints even if renamed or removed rules drop series, or a "
                         "changed step or kind resets their learning (state.on_rule_change: drop)")
     r.add_argument("--log-format", choices=("text", "json"), help="log format (default: logging.format)")
+    r.add_argument("--shadow", action="store_true",
+                   help="shadow mode: events to shadow.topic marked shadow=true, compared with "
+                        "existing alerts")
     r.set_defaults(func=cmd_run)
     d = sub.add_parser("demo", help="a fictional shop's metrics through a local broker and the daemon")
     d.add_argument("--out", default="demo-out", help="where plots and demo state go")
@@ -384,8 +460,9 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--format", choices=("json", "otlp_proto", "otlp_json"), default="json",
                    help="how the scenario is put on the topic (OTLP: as the Collector's Kafka "
                         "exporter writes it)")
-    d.set_defaults(func=lambda a: __import__("streamdet.demo", fromlist=["run_demo"]).run_demo(
-        a.out, a.bootstrap_servers, a.produce_only, fmt=a.format))
+    d.add_argument("--shadow", action="store_true",
+                   help="warm start from the history, then the live day in shadow mode beside made-up alerts")
+    d.set_defaults(func=_demo)
     v = sub.add_parser("evaluate", help="score breaches against labelled incident windows; sweep settings")
     v.add_argument("inputs", nargs="+", help="CSV, JSON lines (.jsonl) or line-protocol (.lp) files")
     v.add_argument("--labels", "-l", required=True,
@@ -406,6 +483,36 @@ def build_parser() -> argparse.ArgumentParser:
 
     tail_mod.add_arguments(t)
     t.set_defaults(func=tail_mod.main)
+    w = sub.add_parser("warm", help="build the daemon's state from history (no events), per input partition")
+    w.add_argument("--config", "-c", required=True, help="YAML config (rules, kafka, state.dir)")
+    src = w.add_mutually_exclusive_group(required=True)
+    src.add_argument("--from", dest="from_files", nargs="+", metavar="FILE", help="history files")
+    src.add_argument("--from-topic", metavar="TOPIC", help="history from this Kafka topic (with --since)")
+    w.add_argument("--since", default="6w", help="with --from-topic: how far back to read (6w)")
+    w.add_argument("--topic", help="the input topic to warm (default: the only kafka.input_topics entry)")
+    w.add_argument("--partitioner", choices=("crc32", "murmur2"), default="crc32",
+                   help="how producers pick partitions from the series key: crc32 (librdkafka's "
+                        "default) or murmur2 (Java's default)")
+    w.add_argument("--format", choices=("csv", "json", "influx"), help="format of the history files")
+    w.add_argument("--force", action="store_true", help="replace existing checkpoints")
+    w.set_defaults(func=cmd_warm)
+    sh = sub.add_parser("shadow", help="compare streamdet with the alerts you already have")
+    shsub = sh.add_subparsers(dest="shadow_command", required=True)
+    rep = shsub.add_parser("report", help="tables per rule and series, and an HTML timeline page",
+                           epilog="without --events/--alerts it reads the daemon's comparison state "
+                                  "(shadow-comparison.json in state.dir); exit codes: 0 done, 2 bad input")
+    rep.add_argument("--config", "-c", help="YAML config (shadow.match, shadow.slack, state.dir)")
+    rep.add_argument("--since", default="7d", help="how far back from the end to compare (7d)")
+    rep.add_argument("--until", help="end of the comparison (default: the latest time seen)")
+    rep.add_argument("--events", nargs="+", metavar="FILE", help="streamdet events (CloudEvents JSON lines)")
+    rep.add_argument("--alerts", nargs="+", metavar="FILE",
+                     help="existing alerts: Alertmanager webhook payloads, one per line")
+    rep.add_argument("--data", nargs="+", metavar="FILE", help="metric history, to draw the observed values")
+    rep.add_argument("--format", choices=("csv", "json", "influx"), help="format of the --data files")
+    rep.add_argument("--slack", help="override shadow.slack (15m)")
+    rep.add_argument("--html", metavar="FILE", help="write the self-contained HTML page here")
+    rep.set_defaults(func=lambda a: __import__("streamdet.shadow.report", fromlist=["run_report"])
+                     .run_report(a))
     c = sub.add_parser("check", help="validate a config file (exit code 2 on errors)")
     c.add_argument("config")
     c.add_argument("--state", metavar="DIR", help="also restore the checkpoints in DIR against the "

@@ -238,3 +238,120 @@ def main(argv: list[str] | None = None) -> int:
 
 if __name__ == "__main__":
     sys.exit(main())
+
+
+# ---------------------------------------------------------------- `streamdet demo --shadow`
+# Warm start from the scenario's three weeks, then the live day in shadow mode beside a handful of
+# made-up existing alerts (Larkspur's on-call rules, invented like the rest of the scenario).
+
+SHADOW_ALERTS = [  # (alert name, labels, start hour, end hour) on the live day
+    ("OrdersLow", {"shop": "larkspur-web"}, 11.2, 11.8),          # the dip: seen by both
+    ("CheckoutSlow", {"service": "checkout"}, 15.5, 19.5),        # the drift: seen by both
+    ("HostCpuHigh", {"host": "web-2"}, 8.0, 8.5),                 # streamdet sees nothing: only theirs
+]                                                                 # the packing queue: only ours
+
+
+def _alert_payload(day0: float) -> dict:
+    from streamdet.events import rfc3339
+
+    alerts = [{"status": "resolved", "labels": {"alertname": name, **labels}, "annotations": {},
+               "startsAt": rfc3339(day0 + a * 3600), "endsAt": rfc3339(day0 + b * 3600),
+               "generatorURL": "", "fingerprint": f"larkspur-{i}"}
+              for i, (name, labels, a, b) in enumerate(SHADOW_ALERTS)]
+    return {"version": "4", "receiver": "streamdet-shadow", "status": "resolved", "alerts": alerts,
+            "groupLabels": {}, "commonLabels": {}, "externalURL": "http://127.0.0.1:9093",
+            "groupKey": "{}:{}", "truncatedAlerts": 0}
+
+
+def run_shadow_demo(out: str = "demo-out", bootstrap: str | None = None, timeout: float = 90.0) -> int:
+    import logging
+    import urllib.request
+
+    from confluent_kafka import Producer
+    from confluent_kafka.admin import AdminClient, NewTopic
+    from prometheus_client import CollectorRegistry
+
+    from streamdet.config import parse_config
+    from streamdet.core.points import PointBuilder, normalise_labels, series_key
+    from streamdet.daemon.consumer import Daemon
+    from streamdet.daemon.health import Metrics
+    from streamdet.daemon.settings import parse_settings
+    from streamdet.daemon.state_store import LocalStateStore
+    from streamdet.shadow.report import format_report, html_page, values_by_series
+    from streamdet.warm import warm_from_files
+
+    outdir = Path(out)
+    outdir.mkdir(parents=True, exist_ok=True)
+    broker = None
+    if bootstrap is None:
+        print("starting the bundled Kafka-compatible broker on 127.0.0.1 ...")
+        broker, bootstrap = start_broker()
+    run_id = uuid.uuid4().hex[:6]
+    topic = f"larkspur-metrics-{run_id}"
+    try:
+        admin = AdminClient({"bootstrap.servers": bootstrap,
+                             "logger": logging.getLogger("streamdet.librdkafka")})
+        for f in admin.create_topics([NewTopic(topic, 1, 1)]).values():
+            f.result(15)
+        now = time.time()
+        points = scenario(now)
+        day0 = np.floor(now / 86400) * 86400 - 86400
+        history = [p for p in points if p["time"] < day0]
+        live = [p for p in points if p["time"] >= day0]
+        (outdir / "history.jsonl").write_bytes(b"\n".join(orjson.dumps(p) for p in history) + b"\n")
+        state = outdir / f"shadow-state-{run_id}"
+        cfg = parse_config({**DEMO_RULES, "kafka": {
+            "bootstrap_servers": bootstrap, "group_id": f"demo-shadow-{run_id}", "input_topics": [topic],
+            "session_timeout": "6s", "checkpoint_interval": "2s", "dead_letter_topic": None},
+            "state": {"dir": str(state)}, "health": {"address": "127.0.0.1:0"},
+            "shadow": {"summary_interval": "1h", "match": {"labels": ["shop", "service", "site", "host"]}}})
+        print(f"warm start: {len(history):,} points of history ({HISTORY_DAYS} days) ...")
+        res = warm_from_files(cfg, [outdir / "history.jsonl"], store=LocalStateStore(state), topic=topic,
+                              offsets={0: 0}, now=now)
+        print(f"  {res.points:,} points in {res.seconds:.1f} s ({res.points_per_second:,.0f} points/s), "
+              "no events; state written for the daemon")
+        p = Producer({"bootstrap.servers": bootstrap, "linger.ms": 20,
+                      "logger": logging.getLogger("streamdet.librdkafka")})
+        for pt in live:  # keyed by series key: the key warm start assumes
+            p.produce(topic, key=series_key(pt["metric"], normalise_labels(pt["labels"])).encode(),
+                      value=orjson.dumps(pt))
+            p.poll(0)
+        if p.flush(30):
+            raise RuntimeError("could not deliver the demo points")
+        events_file = outdir / f"shadow-events-{run_id}.jsonl"
+        metrics = Metrics(CollectorRegistry())
+        daemon = Daemon(cfg, parse_settings(cfg), metrics=metrics, events_file=str(events_file), shadow=True)
+        thread = threading.Thread(target=daemon.run, kwargs={"install_signals": False}, daemon=True)
+        thread.start()
+        print(f"live day in shadow mode: {len(live):,} points; events go to {events_file} "
+              "marked \"shadow\": true")
+        get = metrics.registry.get_sample_value
+        deadline = time.monotonic() + timeout
+        while time.monotonic() < deadline:
+            done = (get("streamdet_points_accepted_total") or 0) + (get("streamdet_points_late_total") or 0)
+            if done >= len(live) and daemon.health_port is not None:
+                break
+            time.sleep(0.3)
+        body = orjson.dumps(_alert_payload(day0))
+        req = urllib.request.Request(f"http://127.0.0.1:{daemon.health_port}/alerts", data=body,
+                                     headers={"Content-Type": "application/json"})
+        with urllib.request.urlopen(req, timeout=5) as r:
+            print(f"existing alerts posted to the webhook receiver: HTTP {r.status}")
+        daemon.stop()
+        thread.join(15)
+        book = daemon.shadow.book  # the daemon's last tick taught it every series of the engines
+        comparison = book.compare(since=day0, horizon=max(p["time"] for p in live))
+        print()
+        print(format_report(comparison))
+        b = PointBuilder()
+        for pt in points:
+            if pt["time"] >= day0:
+                b.add(pt["metric"], normalise_labels(pt["labels"]), pt["time"], pt["value"])
+        page = outdir / "shadow-report.html"
+        page.write_text(html_page(comparison, values_by_series(b.build())), encoding="utf-8")
+        print(f"\nHTML timeline: {page}")
+        return 0
+    finally:
+        if broker is not None:
+            broker.kill()
+            broker.wait(5)

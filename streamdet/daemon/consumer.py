@@ -82,7 +82,7 @@ class Daemon:
     def __init__(self, config: Config, settings: DaemonSettings, *, metrics: Metrics,
                  store: StateStore | None = None, events_file: str | None = None,
                  fresh_partitions: Iterable[TP] = (), log_interval: float = 10.0,
-                 faults: FaultPlan | None = None) -> None:
+                 faults: FaultPlan | None = None, shadow: bool | None = None) -> None:
         self.config = config
         self.settings = settings
         self.metrics = metrics
@@ -105,6 +105,13 @@ class Daemon:
         self.faults = faults if faults is not None else FaultPlan.from_environment()  # tests only
         self.writer = CheckpointWriter(self.store, self.faults)
         self._failed = False  # set on any unexpected error: no checkpoint is written after it
+        # --- shadow mode (streamdet/shadow): None when off; `shadow` overrides the config's switch
+        from streamdet.shadow.settings import ShadowSettings, parse_shadow
+
+        self.shadow_settings = parse_shadow(config)
+        if shadow is not None:
+            self.shadow_settings = self.shadow_settings.on() if shadow else ShadowSettings()
+        self.shadow = None
 
     # ------------------------------------------------------------ configuration
 
@@ -134,9 +141,20 @@ class Daemon:
             signal.signal(signal.SIGTERM, self.stop)
             signal.signal(signal.SIGINT, self.stop)
         server = None
+        output_topic, extensions = self.settings.output_topic, None
+        if self.shadow_settings.enabled:  # --- shadow mode
+            from streamdet.shadow.runtime import EXTENSIONS, ShadowRuntime
+
+            output_topic, extensions = self.shadow_settings.topic, EXTENSIONS
+            self.shadow = ShadowRuntime(self.shadow_settings, registry=self.metrics.registry,
+                                        state_dir=self.settings.state_dir, consumer_conf=self.consumer_conf(),
+                                        source=self.settings.source)
+            log.info("shadow mode: events to %s, alert webhook on %s",
+                     self.events_file or self.shadow_settings.topic, self.shadow_settings.webhook_path)
         if health:
             host, port = self.settings.health_host_port
-            server = HealthServer(self.metrics, self.ready, host, port).start()
+            routes = self.shadow.routes() if self.shadow else None
+            server = HealthServer(self.metrics, self.ready, host, port, routes).start()
             self.health_port = server.port
             log.info("health on http://%s:%d (/metrics, /healthz, /readyz)", host, server.port)
         log.info("consuming %s from %s as group %s; librdkafka options %s, consumer %s, producer %s",
@@ -144,13 +162,15 @@ class Daemon:
                  self.settings.group_id, redacted(self.settings.client), redacted(self.settings.consumer),
                  redacted(self.settings.producer))
         self.sink = Sink(metrics=self.metrics, source=self.settings.source,
-                         producer_conf=self.producer_conf(), output_topic=self.settings.output_topic,
+                         producer_conf=self.producer_conf(), output_topic=output_topic,
                          dead_letter_topic=self.settings.dead_letter_topic, events_file=self.events_file,
                          log_interval=self.log_interval,
                          # alert routing (issue 10): routed encoding and the optional Alertmanager sink
                          encoder=Encoder(self.config, self.settings.source),
-                         alerts=alertmanager_sink(self.config, self.settings, self.metrics),
-                         faults=self.faults)
+                         # in shadow mode nothing reaches the live alert route
+                         alerts=None if self.shadow_settings.enabled else
+                         alertmanager_sink(self.config, self.settings, self.metrics),
+                         faults=self.faults, extensions=extensions)
         self.consumer = Consumer(self.consumer_conf())
         self.consumer.subscribe(list(self.settings.input_topics), on_assign=self._on_assign,
                                 on_revoke=self._on_revoke, on_lost=self._on_lost)
@@ -165,6 +185,8 @@ class Daemon:
                 now = time.monotonic()
                 if now - self._last_checkpoint >= self.settings.checkpoint_interval:
                     self._begin_checkpoint()
+                if self.shadow:  # --- shadow mode: periodic summary
+                    self.shadow.tick([p.engine for p in self.parts.values()], self.sink.send_document)
                 if now - self._last_probe >= 2.0:
                     self._probe()
                     self._update_gauges()
@@ -186,6 +208,12 @@ class Daemon:
                 # on nothing is checkpointed, not even by the revoke that close() triggers.
                 self._failed = True
                 self.writer.abandon()
+            if self.shadow:  # --- shadow mode
+                self.shadow.stop()
+                if code == 0:
+                    self.shadow.tick([p.engine for p in self.parts.values()], self.sink.send_document,
+                                     force=True)
+                    self.shadow.save()
             self.sink.close(timeout=2.0)
             try:
                 self.consumer.close()
@@ -323,6 +351,8 @@ class Daemon:
             if part.engine.dropped:
                 self._log_dropped(key, part.engine)
             self.sink.send(events, time.monotonic())
+            if self.shadow:  # --- shadow mode
+                self.shadow.observe(events)
             part.next_offset = items[-1].offset() + 1
             part.dirty = True
         self.metrics.batch_seconds.observe(time.monotonic() - started)
@@ -456,6 +486,8 @@ class Daemon:
     def _commit(self, offsets: dict[TP, int | None]) -> None:
         """Checkpoints for ``offsets`` are durable: count them and commit the offsets still ours."""
         self.faults.hit("commit")  # test-only (STREAMDET_FAULT)
+        if self.shadow:  # --- shadow mode: the comparison state goes with the checkpoint
+            self.shadow.save()
         self.metrics.checkpoints.inc(len(offsets))
         self._checkpoint_done = time.monotonic()
         assert self.consumer is not None

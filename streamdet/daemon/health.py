@@ -118,11 +118,14 @@ class _ThreadingServer(ThreadingMixIn, WSGIServer):
 class HealthServer:
     """Serves /metrics, /healthz (alive) and /readyz (``ready()`` true) on one port."""
 
-    def __init__(self, metrics: Metrics, ready, host: str, port: int) -> None:
+    def __init__(self, metrics: Metrics, ready, host: str, port: int, routes=None) -> None:
         metrics_app = make_wsgi_app(metrics.registry)
+        routes = dict(routes or {})  # extra WSGI apps by path (shadow mode: the alert webhook)
 
         def app(environ, start_response):
             path = environ.get("PATH_INFO", "")
+            if path in routes:
+                return routes[path](environ, start_response)
             if path == "/healthz":
                 start_response("200 OK", [("Content-Type", "text/plain")])
                 return [b"ok\n"]

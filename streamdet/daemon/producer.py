@@ -24,9 +24,10 @@ import logging
 import os
 import time
 from collections import deque
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from typing import IO
 
+import orjson
 from confluent_kafka import KafkaError, KafkaException, Producer
 
 from streamdet.alerting.routing import Encoder
@@ -67,9 +68,11 @@ class Sink:
                  output_topic: str | None, dead_letter_topic: str | None,
                  events_file: str | None = None, log_interval: float = 10.0,
                  encoder: Encoder | None = None, alerts=None,
-                 faults: FaultPlan | None = None) -> None:
+                 faults: FaultPlan | None = None,
+                 extensions: Mapping[str, object] | None = None) -> None:
         self.metrics = metrics
         self.faults = faults or FaultPlan()
+        self.extensions = dict(extensions or {})  # CloudEvents extension attributes (shadow mode)
         self.source = source
         # Routing data (severity, summary, labels, annotations) and the wall-clock detection time
         # are added here, in the adapter; ``alerts`` (an AlertmanagerSink) gets every event too.
@@ -98,7 +101,7 @@ class Sink:
             self.alerts.submit(events)  # never blocks: a bounded queue, drops counted
         if self.file is not None:
             for e in events:
-                self.file.write(self.encoder.to_json(e, detected_at) + b"\n")
+                self.file.write(self._encode(e, detected_at) + b"\n")
                 self.metrics.events_out.labels(e.type).inc()
                 self.metrics.delivery_delay.observe(max(0.0, time.monotonic() - decided_at))
             return
@@ -111,9 +114,23 @@ class Sink:
                 self.faults.hit("deliver")  # test-only (STREAMDET_FAULT)
             # breaches are keyed by series, peer outliers by group: each stays in order
             self._produce(_Message(self.output_topic, e.partition_key.encode(),
-                                   self.encoder.to_json(e, detected_at), headers,
+                                   self._encode(e, detected_at), headers,
                                    kind="event", source=f"{e.type} {e.id}", event_type=e.type,
                                    decided_at=decided_at, seq=self._next_seq()))
+
+    def _encode(self, e: BreachEvent, detected_at: float | None) -> bytes:
+        if not self.extensions:
+            return self.encoder.to_json(e, detected_at)
+        return orjson.dumps({**self.encoder.to_cloudevent(e, detected_at), **self.extensions})
+
+    def send_document(self, key: bytes, doc: Mapping[str, object]) -> None:
+        """Any other CloudEvent (a shadow summary) to the same place as the events."""
+        value = orjson.dumps(doc)
+        if self.file is not None:
+            self.file.write(value + b"\n")
+        elif self.output_topic is not None and self.producer is not None:
+            self._produce(_Message(self.output_topic, key, value, [("content-type", CONTENT_TYPE.encode())],
+                                   kind="event", source=f"{doc.get('type')} {doc.get('id')}"))
 
     def dead_letter(self, value: bytes, key: bytes | None, headers: Headers, source: str = "") -> None:
         """Send an undecodable message on; ``source`` (topic/partition@offset) is for the log."""
