@@ -38,3 +38,11 @@ def as_batch(points) -> PointBatch:
 
 
 DAEMON_RULES = {"rules": [{"name": "flow", "step": "auto"}]}
+
+
+def without_wall_clock(doc: dict) -> dict:
+    """An event document without the wall-clock detection time the daemon's sink stamps
+    (replay leaves it null): everything decided from the data must be identical."""
+    doc["data"].pop("detected_at", None)
+    doc["data"].pop("detection_delay_seconds", None)
+    return doc
