@@ -10,6 +10,7 @@ series' residual scale, capped at 10. Members still warming up have no say and k
 from __future__ import annotations
 
 from collections.abc import Sequence
+from typing import ClassVar
 
 import numpy as np
 
@@ -20,6 +21,7 @@ LOSS_CAP = 10.0
 
 class Blend(ColumnState):
     prefix = "blend"
+    BY_BUCKET: ClassVar[frozenset[str]] = frozenset({"w"})  # read as (members, rows)
 
     def __init__(self, capacity: int = 0, *, members: Sequence[str],
                  learning_rate: float | Sequence[float] = 0.5,
@@ -38,9 +40,11 @@ class Blend(ColumnState):
         w = self.w[rows].T.astype(np.float64) * ready
         total = w.sum(axis=0)
         any_ready = ready.any(axis=0)
-        uniform = ready / np.maximum(ready.sum(axis=0), 1)
         with np.errstate(invalid="ignore", divide="ignore"):
-            w = np.where(total > 0, w / total, uniform)
+            w /= total
+        none = total <= 0  # no ready member has weight (or none is ready): equal weights
+        if none.any():
+            w[:, none] = ready[:, none] / np.maximum(ready[:, none].sum(axis=0), 1)
         centre = (w * preds).sum(axis=0)
         return centre, w, any_ready
 
@@ -53,13 +57,17 @@ class Blend(ColumnState):
         mass = wr.sum(axis=0)
         v = wr * np.exp(-per_rule(self.learning_rate, rule) * loss)
         vsum = v.sum(axis=0)
-        n_ready = np.maximum(ready.sum(axis=0), 1)
-        v /= np.where(vsum > 0, vsum, 1.0)
+        even = ready / np.maximum(ready.sum(axis=0), 1)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            v /= vsum
+        decayed = ~(vsum > 0)  # every ready weight decayed to nothing: restart them evenly
+        if decayed.any():
+            v[:, decayed] = even[:, decayed]
         share = per_rule(self.share, rule)
-        # Where every ready weight had decayed to nothing, restart them evenly.
-        v = np.where(vsum > 0, v, ready / n_ready)
-        mixed = (1.0 - share) * v + share * (ready / n_ready)
-        mass = np.where(mass > 0, mass, 1.0 / len(self.members))
+        mixed = (1.0 - share) * v + share * even
+        empty = ~(mass > 0)
+        if empty.any():
+            mass[empty] = 1.0 / len(self.members)
         new = np.where(ready, mixed * mass, w)
         new /= new.sum(axis=0)
         self.w[rows] = new.T

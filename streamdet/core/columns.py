@@ -19,9 +19,9 @@ class ColumnState:
     """Arrays of shape ``(capacity, *tail)`` named by ``COLUMNS``; attributes of the instance."""
 
     COLUMNS: ClassVar[ColumnSpec] = {}
-    # Columns read one bucket at a time across many rows (hour-of-week profiles, rings): stored
-    # bucket-major (Fortran order), so a wave's bucket is one contiguous run of memory instead
-    # of one cache line per row.
+    # Columns read one position at a time across many rows (an hour-of-week bucket, a ring
+    # slot, a forecaster's weight): stored position-major (Fortran order), so what a wave reads
+    # is one contiguous run of memory instead of one cache line per row.
     BY_BUCKET: ClassVar[frozenset[str]] = frozenset()
     OPTIONAL: ClassVar[frozenset[str]] = frozenset()  # columns an older snapshot may lack (reset)
     prefix: str = ""
