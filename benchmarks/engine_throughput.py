@@ -20,12 +20,16 @@ from streamdet.core.engine import Engine
 from streamdet.core.points import PointBatch
 
 
-def engine_run(n_series: int, n_steps: int, seed: int = 0) -> tuple[float, int, Engine]:
+def engine_run(n_series: int, n_steps: int, seed: int = 0,
+               recent_steps: int | None = None) -> tuple[float, int, Engine]:
     rng = np.random.default_rng(seed)
     keys = [f'requests{{host="h{i:05d}"}}' for i in range(n_series)]
     series = {k: ("requests", (("host", k[15:-2]),)) for k in keys}
     base = rng.uniform(10, 1000, n_series)
-    eng = Engine(parse_config({"rules": [{"name": "bench", "step": "60s", "warmup": "30 steps"}]}))
+    raw: dict = {"rules": [{"name": "bench", "step": "60s", "warmup": "30 steps"}]}
+    if recent_steps is not None:  # engine.recent_steps (the series-band ring); None: the default
+        raw["engine"] = {"recent_steps": recent_steps}
+    eng = Engine(parse_config(raw))
     # Aligned to a step: every batch holds exactly one step of every series. (An unaligned start
     # spreads each batch over two steps; under one clock per engine that made two thirds of the
     # points late, so the old figures measured mostly dropped points.)
@@ -65,8 +69,10 @@ def main() -> None:
     ap.add_argument("--steps", type=int, default=300)
     ap.add_argument("--river-series", type=int, default=200)
     ap.add_argument("--river-steps", type=int, default=600)
+    ap.add_argument("--recent-steps", type=int, default=None,
+                    help="engine.recent_steps (0: no series-band ring; default: the config default)")
     args = ap.parse_args()
-    secs, points, eng = engine_run(args.series, args.steps)
+    secs, points, eng = engine_run(args.series, args.steps, recent_steps=args.recent_steps)
     ours = points / secs
     print(f"engine: {points:,} points over {args.series:,} series in {secs:.2f} s "
           f"= {ours:,.0f} points/s ({1e9 / ours:.0f} ns/point)")

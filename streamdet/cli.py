@@ -5,13 +5,17 @@ from __future__ import annotations
 
 import argparse
 import dataclasses
+import math
 import os
 import sys
 import time
 from collections.abc import Sequence
+from datetime import UTC, datetime
 from pathlib import Path
 
-from streamdet.config import FORMATS, Config, ConfigError, load_config, parse_config
+import numpy as np
+
+from streamdet.config import FORMATS, Config, ConfigError, load_config, parse_config, parse_duration
 
 
 def _load(path: str | None) -> Config:
@@ -104,6 +108,14 @@ def _output_problems(args: argparse.Namespace) -> list[str]:
                                 "which is not a directory")
             elif not os.access(existing, os.W_OK):
                 problems.append(f"--plot {args.plot}: {str(existing)!r} is not writable")
+    for flag in ("since", "until"):  # plot window
+        if getattr(args, flag, None) is not None:
+            if not args.plot:
+                problems.append(f"--{flag} applies to plots only: add --plot DIR")
+            try:
+                _plot_time(getattr(args, flag), 0.0)
+            except ValueError as exc:
+                problems.append(f"--{flag}: {exc}")
     return problems
 
 
@@ -235,10 +247,88 @@ def cmd_replay(args: argparse.Namespace) -> int:
         _post_replay_alerts(args.alertmanager, cfg, result.events)
     print(format_summary(result), file=sys.stderr if args.events == "-" else sys.stdout)
     if args.plot:
-        paths = plot_series(result.engine, result.events, args.plot)
-        print(f"plots: {len(paths)} PNG file(s) in {args.plot}",
+        last = float(result.engine.clock) if math.isfinite(result.engine.clock) else 0.0
+        since, until = (_plot_time(args.since, last), _plot_time(args.until, last))  # checked above
+        paths = plot_series(result.engine, result.events, args.plot, since=since, until=until)
+        print(f"plots: {len(paths)} PNG file(s) and index.html in {args.plot}",
               file=sys.stderr if args.events == "-" else sys.stdout)
     return REPLAY_OK
+
+
+# --- series bands and plots (issue 10): --since/--until for plots, `streamdet show`
+def _plot_time(text: str | None, end: float) -> float | None:
+    """``--since``/``--until``: an ISO 8601 time (UTC unless it names an offset) or a duration
+    back from the end of the data (``2d``: the last two days). Raises ValueError."""
+    if text is None:
+        return None
+    try:
+        return end - parse_duration(text)
+    except (ValueError, TypeError):
+        pass
+    try:
+        when = datetime.fromisoformat(text)
+    except ValueError:
+        raise ValueError(f"{text!r} is neither a time (2024-05-01T12:00Z) nor a duration (2d)") from None
+    if when.tzinfo is None:
+        when = when.replace(tzinfo=UTC)
+    return when.timestamp()
+
+
+def cmd_show(args: argparse.Namespace) -> int:
+    """The band of one series from history files: an SVG (or a PNG) of its last ``--hours``."""
+    from streamdet.band_svg import band_svg
+    from streamdet.core.recent import RecentBand
+    from streamdet.plots import breaches_by_series, plot_series, safe_name
+    from streamdet.replay import replay
+
+    def fail(msg: str) -> int:
+        print(f"streamdet show: {msg}", file=sys.stderr)
+        return 2
+
+    try:
+        cfg = _load(args.config)
+    except ConfigError as exc:
+        print(str(exc), file=sys.stderr)
+        return 2
+    out = Path(args.out or f"{safe_name(args.series)}.svg")
+    if out.suffix.lower() not in (".svg", ".png"):
+        return fail(f"--out {out}: must end in .svg or .png")
+    if not (args.hours > 0 and math.isfinite(args.hours)):
+        return fail(f"--hours: must be a positive number, got {args.hours}")
+    try:
+        result = replay(args.inputs, cfg, fmt=args.format, record_steps=True)
+    except (OSError, ValueError) as exc:
+        return fail(str(exc))
+    eng = result.engine
+    row = eng.table.index.get(args.series)
+    if row is None:
+        near = sorted(k for k in eng.table.index if args.series in k)[:5]
+        return fail(f"no series {args.series!r} in the input"
+                    + (f"; did you mean one of {near}?" if near else ""))
+    cols = eng.log.columns()
+    sel = cols["row"] == row
+    if not sel.any():
+        return fail(f"{args.series!r} has no closed step yet")
+    step = float(eng.table.step[row])
+    since = float(cols["start"][sel][-1]) + step - args.hours * 3600.0
+    sel &= cols["start"] >= since
+    if out.suffix.lower() == ".png":
+        tmp = out.parent / f".{out.stem}.tmp"
+        paths = plot_series(eng, result.events, tmp, keys=[args.series], since=since, index=False)
+        paths[0].replace(out)
+        tmp.rmdir()
+    else:
+        band = RecentBand(args.series, cols["start"][sel], *(cols[n][sel] for n in
+                                                              ("observed", "expected", "lower", "upper")),
+                          np.zeros(int(sel.sum()), np.int8), step, eng.table.units.get(row))
+        end = float(cols["start"].max()) + step
+        band.breaches = [(b.start, math.inf if b.still_open else b.end, 1 if b.direction == "above" else -1)
+                         for b in breaches_by_series(result.events, end).get(args.series, [])]
+        out.write_text(band_svg(band), encoding="utf-8")
+    print(f"{out}: {args.series}, {int(sel.sum())} step(s), "
+          f"{len(breaches_by_series(result.events, 0).get(args.series, []))} breach(es) in the input")
+    return 0
+# --- end series bands and plots
 
 
 def _post_replay_alerts(url: str, cfg: Config, events) -> None:
@@ -433,13 +523,26 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("inputs", nargs="+", help="CSV, JSON lines (.jsonl) or line-protocol (.lp) files")
     p.add_argument("--config", "-c", help="YAML config (default: built-in defaults)")
     p.add_argument("--events", "-e", help="write events as CloudEvents JSON lines here ('-' = stdout)")
-    p.add_argument("--plot", metavar="DIR", help="write a PNG per series that breached into DIR")
+    p.add_argument("--plot", metavar="DIR", help="write a PNG per series that breached into DIR, "
+                   "and index.html listing them with their breaches")
+    p.add_argument("--since", help="plots start here: a time (2024-05-01T00:00Z) or a duration back "
+                   "from the end of the data (2d)")
+    p.add_argument("--until", help="plots end here (same forms as --since)")
     p.add_argument("--format", choices=FORMATS,
                    help="input format (default: from each file's extension, .otlp.json and .pb for "
                         "OTLP; required for others, e.g. .txt or Telegraf JSON)")
     p.add_argument("--alertmanager", metavar="URL",
                    help="also post the events to this Alertmanager (firing and resolved alerts)")
     p.set_defaults(func=cmd_replay)
+    sh_ = sub.add_parser("show", help="the band of one series from history files, as SVG or PNG")
+    sh_.add_argument("series", help="the series key, e.g. 'requests{host=\"a\"}'")
+    sh_.add_argument("--from", dest="inputs", nargs="+", required=True, metavar="FILE",
+                     help="history files (as for replay)")
+    sh_.add_argument("--config", "-c", help="YAML config (default: built-in defaults)")
+    sh_.add_argument("--format", choices=FORMATS, help="input format (default: from the extension)")
+    sh_.add_argument("--hours", type=float, default=48.0, help="how much of the end to show (48)")
+    sh_.add_argument("--out", "-o", help="FILE.svg or FILE.png (default: the series' name .svg)")
+    sh_.set_defaults(func=cmd_show)
     r = sub.add_parser("run", help="run the Kafka daemon until SIGTERM")
     r.add_argument("--config", "-c", help="YAML config; STREAMDET_* environment variables override it")
     r.add_argument("--events-file", help="write events as JSON lines here instead of the output topic")

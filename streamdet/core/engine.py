@@ -35,6 +35,7 @@ from streamdet.core.forecast import StepContext
 from streamdet.core.forecast.base import as_index
 from streamdet.core.judge import TemporalJudge
 from streamdet.core.points import MAX_TIME, MIN_TIME, PointBatch, shorten
+from streamdet.core.recent import RecentBand, RecentSteps
 from streamdet.core.relevel import RunTracker
 from streamdet.core.series import SeriesTable
 from streamdet.core.snapshot import (  # noqa: F401 (SNAPSHOT_VERSION, SnapshotError: re-exported)
@@ -141,6 +142,11 @@ class Engine:
         self.runs = RunTracker(cap)
         self.parts: list[ColumnState] = [self.table, self.steps, *self.judge.parts, self.evidence,
                                          self.breaches, self.runs]
+        # --- series bands: the last engine.recent_steps steps per series (None: not kept)
+        self.recent = RecentSteps(cap, config.recent_steps) if config.recent_steps else None
+        if self.recent is not None:
+            self.parts.append(self.recent)
+        # --- end series bands
         self.rule_agg = np.array([AGGREGATION_CODES[r.aggregation] for r in rules], np.int64)
         self.rule_counter = np.array([r.kind == "counter" for r in rules], dtype=bool)
         self.rule_window = np.array([r.confirm_steps for r in rules], np.int64)
@@ -512,6 +518,12 @@ class Engine:
             self.log.add(rows, start, y, np.where(a.any_ready, a.centre, np.nan),
                          np.where(judged, a.lower, np.nan), np.where(judged, a.upper, np.nan), judged,
                          np.where(judged, p_two, np.nan))
+        if self.recent is not None:  # series bands: one slot per row of the wave
+            self.recent.write(rows, sel, np.rint((start - first) / step),
+                              np.stack([y, np.where(a.any_ready, a.centre, np.nan),
+                                        np.where(judged, a.lower, np.nan),
+                                        np.where(judged, a.upper, np.nan)], axis=1),
+                              self.breaches.status[sel])
         events = self._events(rows, start, step, y, a, surprise, window, threshold, trans)
         self.judge.learn(ctx, y, a, judged, trans.side != 0, in_run)
         self._relevel(rows, back, rl)
@@ -606,6 +618,33 @@ class Engine:
         if row is None:
             return True
         return bool(self.judge.band.n[row] < self.table.warmup[row]) or row in self.pending
+
+    def recent_band(self, key: str) -> RecentBand | None:
+        """The recent steps of series ``key`` (None: unknown series or no ring kept). Safe to
+        call from another thread while this one ingests: the copy is consistent or retried."""
+        rec, tab = self.recent, self.table
+        if rec is None:
+            return None
+        row = tab.index.get(key)
+        if row is None:
+            return None
+        got = rec.read(row, lambda: (tab.keys[row] if row < len(tab.keys) else None,
+                                     float(tab.first[row]), float(tab.step[row]),
+                                     int(self.breaches.status[row]), float(self.breaches.since[row])))
+        if got is None:
+            raise TimeoutError(f"series {shorten(key, 200)}: its band was busy for every read attempt")
+        number, values, status, (owner, first, step, open_side, since) = got
+        if owner != key:
+            return None  # evicted meanwhile
+        start = first + number.astype(np.float64) * step if number.shape[0] else np.empty(0)
+        v = values.astype(np.float64)
+        band = RecentBand(key, start, v[:, 0], v[:, 1], v[:, 2], v[:, 3], status, step,
+                          tab.units.get(row))
+        band.breaches = band.status_runs()
+        if open_side and band.breaches and band.breaches[-1][2] == open_side and math.isfinite(since):
+            s0, _e, side = band.breaches[-1]
+            band.breaches[-1] = (min(s0, since), math.inf, side)  # still open: no end yet
+        return band
 
     # ------------------------------------------------------------ snapshots
     # Format and report types live in core/snapshot.py; this is the engine side.

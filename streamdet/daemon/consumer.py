@@ -153,7 +153,8 @@ class Daemon:
                      self.events_file or self.shadow_settings.topic, self.shadow_settings.webhook_path)
         if health:
             host, port = self.settings.health_host_port
-            routes = self.shadow.routes() if self.shadow else None
+            routes = self.shadow.routes() if self.shadow else {}
+            routes.update(self.series_routes())  # series bands: /series, /series/{key}/band.svg
             server = HealthServer(self.metrics, self.ready, host, port, routes).start()
             self.health_port = server.port
             log.info("health on http://%s:%d (/metrics, /healthz, /readyz)", host, server.port)
@@ -502,6 +503,14 @@ class Daemon:
                 log.warning("offset commit failed (%s); the checkpoint still covers it", exc)
 
     # ------------------------------------------------------------ health
+
+    def series_routes(self, muted=None) -> dict:
+        """``/series`` and ``/series/{key}/band.svg`` over this daemon's engines (series bands).
+        ``muted``: optional ``key -> [(start, end)]`` for silenced periods (drawn hatched)."""
+        from streamdet.daemon.series_api import series_app
+
+        app = series_app(lambda: [p.engine for p in self.parts.values()], muted)
+        return {"/series": app, "/series/": app}
 
     def _on_error(self, err: KafkaError) -> None:
         if err.code() in (KafkaError._ALL_BROKERS_DOWN, KafkaError._TRANSPORT, KafkaError._RESOLVE):

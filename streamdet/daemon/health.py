@@ -121,11 +121,16 @@ class HealthServer:
     def __init__(self, metrics: Metrics, ready, host: str, port: int, routes=None) -> None:
         metrics_app = make_wsgi_app(metrics.registry)
         routes = dict(routes or {})  # extra WSGI apps by path (shadow mode: the alert webhook)
+        # a path ending in "/" serves everything under it (series bands: /series/{key}/band.svg)
+        prefixes = [(p, a) for p, a in routes.items() if p.endswith("/")]
 
         def app(environ, start_response):
             path = environ.get("PATH_INFO", "")
             if path in routes:
                 return routes[path](environ, start_response)
+            for prefix, sub in prefixes:
+                if path.startswith(prefix):
+                    return sub(environ, start_response)
             if path == "/healthz":
                 start_response("200 OK", [("Content-Type", "text/plain")])
                 return [b"ok\n"]
