@@ -261,7 +261,7 @@ class Config:
     series: SeriesLimits = field(default_factory=SeriesLimits)
     input: InputConfig = field(default_factory=InputConfig)
     lag_resolution: float = 7200.0  # engine.lag_resolution: cell size of the lag rings
-    recent_steps: int = 288  # engine.recent_steps: steps per series kept for /series bands (0: none)
+    recent_steps: int = 0  # engine.recent_steps: steps per series kept for /series bands (0: none)
     extra: Mapping[str, Any] = field(default_factory=dict)  # sections owned by adapters
 
     def rule_for(self, metric: str, labels: Mapping[str, str]) -> int | None:
@@ -681,7 +681,7 @@ def parse_config(raw: object) -> Config:
     if lag_resolution > 86400 or 86400 % lag_resolution:
         eng.bad("lag_resolution", f"must divide one day evenly (e.g. 1h, 2h, 30m), got {lag_resolution:g} s")
         lag_resolution = 7200.0
-    recent_steps = eng.number("recent_steps", 288, lo=0, hi=100_000, integer=True)  # series bands
+    recent_steps = eng.number("recent_steps", 0, lo=0, hi=100_000, integer=True)  # series bands
     eng.done()
     extra = {name: top.get(name, None) for name in ADAPTER_SECTIONS}
     extra = {k: v for k, v in extra.items() if v is not None}

@@ -115,7 +115,9 @@ def test_ring_is_not_snapshotted_and_restores_empty_with_any_size():
 def test_recent_steps_zero_keeps_no_ring_and_bad_values_are_refused():
     eng = Engine(_config(recent=0))
     assert eng.recent is None
-    assert eng.state_bytes_per_series() + 21 * 288 + 8 == Engine(parse_config({})).state_bytes_per_series()
+    assert Engine(parse_config({})).recent is None  # off by default: ~2 KB of detection state per series
+    on = Engine(_config(recent=288))
+    assert eng.state_bytes_per_series() + 21 * 288 + 8 == on.state_bytes_per_series()
     for bad in (-1, 2.5, "many", 10**6):
         with pytest.raises(ConfigError, match=r"engine\.recent_steps"):
             _config(recent=bad)

@@ -156,7 +156,7 @@ def series_app(engines: Callable[[], list[Engine]],
             for eng in current():
                 if eng.recent is None:
                     return _reply(start_response, "404 Not Found",
-                                  "series bands are off (engine.recent_steps: 0)\n")
+                                  "series bands are off: set engine.recent_steps (e.g. 288)\n")
                 band = eng.recent_band(key)
                 if band is not None:
                     break
