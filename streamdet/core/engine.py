@@ -567,15 +567,17 @@ class Engine:
             self.counters["relearns"] += rr.shape[0]
 
     def _surprise(self, sel, judged, stat, rule, unusual, window) -> np.ndarray:
-        """Combined surprise per side (Brown's method for the series' learnt correlation), for
-        rows with an open breach or past the independent-steps threshold; 0 elsewhere."""
+        """Combined surprise per side (Brown's method for the series' learnt correlation, not
+        below Tippett's bound for one extreme step), for rows with an open breach or past the
+        independent-steps threshold; 0 elsewhere."""
         out = np.zeros(stat.shape)
         cand = judged & ((self.breaches.status[sel] != 0)
                          | (unusual & (stat >= self.rule_crit[rule])).any(axis=1))
         if cand.any():
             i = np.flatnonzero(cand)
             rows = row_numbers(sel)[i]
-            out[i] = combined_surprise(stat[i], window[i, None], self.judge.tails.rho(rows)[:, None])
+            out[i] = combined_surprise(stat[i], window[i, None], self.judge.tails.rho(rows)[:, None],
+                                       self.evidence.largest(rows))
         return out
 
     def _set_since(self, row: int, i: int, wave: breach_events.Wave, threshold: float) -> None:
