@@ -169,6 +169,9 @@ def daemon_run(bootstrap: str, topic: str, total: int, state_dir: str, fmt: str 
     time.sleep(2)
     d.stop()
     th.join(30)
+    if first >= total:
+        print("  (every point was in the daemon's first batch: no rate; give more --series or --steps)")
+        return float("nan"), metrics
     return (total - first) / secs, metrics
 
 
