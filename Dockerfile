@@ -10,7 +10,7 @@ COPY config/docker.yaml /etc/streamdet/config.yaml
 
 USER streamdet
 ENV STREAMDET_STATE_DIR=/var/lib/streamdet \
-    STREAMDET_HEALTH_ADDRESS=0.0.0.0:9464
-EXPOSE 9464
+    STREAMDET_HEALTH_ADDRESS=0.0.0.0:8734
+EXPOSE 8734
 ENTRYPOINT ["streamdet"]
 CMD ["run", "--config", "/etc/streamdet/config.yaml", "--log-format", "json"]

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import argparse
 import dataclasses
+import logging
 import math
 import os
 import sys
@@ -28,6 +29,8 @@ def cmd_check(args: argparse.Namespace) -> int:
     from streamdet.daemon.settings import load_with_environment
     from streamdet.shadow.settings import parse_shadow
 
+    quiet = logging.NullHandler()  # the config warnings are printed below, not logged twice
+    logging.getLogger("streamdet.config").addHandler(quiet)
     try:
         cfg, settings = load_with_environment(args.config)
         parse_shadow(cfg)
@@ -36,9 +39,13 @@ def cmd_check(args: argparse.Namespace) -> int:
         for p in exc.problems:
             print(f"  {p}", file=sys.stderr)
         return 2
+    finally:
+        logging.getLogger("streamdet.config").removeHandler(quiet)
     env = sorted(k for k in os.environ if k.startswith("STREAMDET_"))
     note = f"; with {', '.join(env)} from the environment" if env else ""
     print(f"{args.config}: OK ({len(cfg.rules)} rule(s): {', '.join(r.name for r in cfg.rules)}{note})")
+    for w in cfg.warnings:
+        print(f"  warning: {w}")
     return _check_state(cfg, settings, args.state) if args.state else 0
 
 

@@ -11,6 +11,7 @@
 from __future__ import annotations
 
 import fnmatch
+import logging
 import math
 import re
 import zoneinfo
@@ -25,7 +26,9 @@ from streamdet.alerting.templates import NAME as TEMPLATE_NAME
 from streamdet.alerting.templates import Template, TemplateError
 
 AGGREGATIONS = ("mean", "sum", "min", "max", "last", "count")
-DIRECTIONS = ("both", "above", "below")
+DIRECTIONS = ("either", "rise", "drop")
+# Old spellings of ``direction``, still read (with a warning) so existing files keep working.
+OLD_DIRECTIONS = {"both": "either", "above": "rise", "below": "drop"}
 KINDS = ("gauge", "counter")
 FORMATS = ("json", "influx", "csv", "telegraf_json", "otlp_proto", "otlp_json")
 TIME_UNITS = ("s", "ms", "us", "ns")
@@ -33,6 +36,7 @@ DEFAULT_RESOURCE_LABELS = ("service.name", "service.instance.id", "host.name")
 _UNITS = {"s": 1, "m": 60, "h": 3600, "d": 86400, "w": 604800}
 _DURATION = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*(ms|s|m|h|d|w)?\s*$")
 _STEPS = re.compile(r"^\s*(\d+)\s*steps?\s*$")
+log = logging.getLogger("streamdet.config")
 
 
 class ConfigError(ValueError):
@@ -184,7 +188,7 @@ class Rule:
     min_width: float = 0.0
     scale_floor: float = 0.5
     timezone: str = "UTC"  # IANA name; hour-of-day and hour-of-week buckets follow local time
-    direction: str = "both"
+    direction: str = "either"  # which moves to watch: "rise" (above the band), "drop", "either"
     confirm_steps: int = 5
     clear_steps: int = 3
     rearm: Span = field(default_factory=lambda: Span(seconds=3600.0))
@@ -263,6 +267,7 @@ class Config:
     lag_resolution: float = 7200.0  # engine.lag_resolution: cell size of the lag rings
     recent_steps: int = 0  # engine.recent_steps: steps per series kept for /series bands (0: none)
     extra: Mapping[str, Any] = field(default_factory=dict)  # sections owned by adapters
+    warnings: tuple[str, ...] = field(default=(), compare=False)  # accepted, but should be changed
 
     def rule_for(self, metric: str, labels: Mapping[str, str]) -> int | None:
         """Index of the first rule whose match selects the series, or None."""
@@ -550,7 +555,18 @@ def _parse_routing(s: _Section) -> Routing:
                    severity=SeverityLevels(warning=warning, critical=critical))
 
 
-def _parse_rule(s: _Section, index: int) -> Rule:
+def _direction(s: _Section, default: str, warnings: list[str]) -> str:
+    """``direction``, reading an old spelling (``above``/``below``/``both``) as its new word."""
+    raw = s.get("direction", default)
+    if isinstance(raw, str) and raw in OLD_DIRECTIONS:
+        new = OLD_DIRECTIONS[raw]
+        warnings.append(f"{s.key('direction')}: {raw!r} is the old spelling of {new!r} and will stop "
+                        f"working in a later release; write direction: {new}")
+        return new
+    return s.choice("direction", default, DIRECTIONS)
+
+
+def _parse_rule(s: _Section, index: int, warnings: list[str] | None = None) -> Rule:
     d = Rule()
     name = s.text("name", f"rule{index}")
     match = _parse_match(s.section("match"))
@@ -595,7 +611,7 @@ def _parse_rule(s: _Section, index: int) -> Rule:
         min_width=s.number("min_width", d.min_width, lo=0.0),
         scale_floor=s.number("scale_floor", d.scale_floor, lo=0.0, hi=1.0),
         timezone=_timezone(s),
-        direction=s.choice("direction", d.direction, DIRECTIONS),
+        direction=_direction(s, d.direction, [] if warnings is None else warnings),
         confirm_steps=confirm_steps,
         clear_steps=clear_steps,
         rearm=rearm,
@@ -656,6 +672,7 @@ ADAPTER_SECTIONS = ("kafka", "state", "health", "output", "logging", "shadow")
 def parse_config(raw: object) -> Config:
     """Validate a decoded YAML document; raises ConfigError naming every bad key path."""
     problems: list[str] = []
+    warnings: list[str] = []
     top = _Section(raw, "", problems)
     rules_raw = top.get("rules", None)
     rules: list[Rule] = []
@@ -665,7 +682,7 @@ def parse_config(raw: object) -> Config:
         problems.append("rules: expected a non-empty list of rules")
     else:
         for i, r in enumerate(rules_raw):
-            rules.append(_parse_rule(_Section(r, f"rules[{i}]", problems), i))
+            rules.append(_parse_rule(_Section(r, f"rules[{i}]", problems), i, warnings))
         names = [r.name for r in rules]
         for dup in sorted({n for n in names if names.count(n) > 1}):
             problems.append(f"rules: rule name {dup!r} is used more than once")
@@ -688,8 +705,11 @@ def parse_config(raw: object) -> Config:
     top.done()
     if problems:
         raise ConfigError(problems)
+    for w in warnings:
+        log.warning("config: %s", w)
     return Config(rules=tuple(rules), series=series, input=input_cfg,
-                  lag_resolution=lag_resolution, recent_steps=int(recent_steps), extra=extra)
+                  lag_resolution=lag_resolution, recent_steps=int(recent_steps), extra=extra,
+                  warnings=tuple(warnings))
 
 
 class _UniqueKeyLoader(yaml.SafeLoader):

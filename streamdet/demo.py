@@ -71,8 +71,8 @@ def scenario(now: float, seed: int = 42) -> list[dict]:
 
 DEMO_RULES = {
     "rules": [
-        {"name": "orders", "match": {"metric": "orders_per_minute"}, "step": "5m", "direction": "below"},
-        {"name": "latency", "match": {"metric": "*_seconds"}, "step": "5m", "direction": "above",
+        {"name": "orders", "match": {"metric": "orders_per_minute"}, "step": "5m", "direction": "drop"},
+        {"name": "latency", "match": {"metric": "*_seconds"}, "step": "5m", "direction": "rise",
          "clear": {"steps": 6}},
         {"name": "everything-else", "step": "5m"},
     ]

@@ -185,7 +185,7 @@ def test_drift_keeps_its_breach_open_while_a_shift_is_relearnt():
     drift = y.copy()
     drift[600:672] += np.arange(72) * 0.5  # +36 sd over 6 h, then flat
     drift[672:] += 36.0
-    cfg = {"rules": [{"name": "r", "step": "5m", "direction": "above"}]}
+    cfg = {"rules": [{"name": "r", "step": "5m", "direction": "rise"}]}
     _, ev_s = run(cfg, "m", t, shift)
     eng_d, ev_d = run(cfg, "m", t, drift)
     first_close = next(e for e in ev_s if e.type == CLOSED)

@@ -14,7 +14,7 @@ def test_defaults():
     cfg = parse_config({})
     (rule,) = cfg.rules
     assert (rule.step, rule.width, rule.confirm_steps, rule.clear_steps) == (60.0, 3.0, 5, 3)
-    assert rule.relearn_after.seconds == 7200 and rule.direction == "both"
+    assert rule.relearn_after.seconds == 7200 and rule.direction == "either"
     assert rule.rearm.seconds == 3600
     # handbook fact: P(|Z| > 3) = 0.0027 for a standard normal; the open rarity is its square
     assert abs(rule.open_rarity - 0.0026998**2) < 1e-9
@@ -44,6 +44,33 @@ def test_label_matchers_and_first_match_wins():
     assert cfg.rule_for("cpu", {"track": "canary"}) == 2
 
 
+@pytest.mark.parametrize(("old", "new"), [("above", "rise"), ("below", "drop"), ("both", "either")])
+def test_old_direction_spellings_are_read_with_a_warning(old, new, caplog):
+    cfg = parse_config({"rules": [{"name": "a", "direction": new}, {"name": "b", "direction": old}]})
+    assert [r.direction for r in cfg.rules] == [new, new]
+    (w,) = cfg.warnings
+    assert w.startswith(f"rules[1].direction: {old!r} is the old spelling of {new!r}")
+    assert [r.getMessage() for r in caplog.records if r.name == "streamdet.config"] == [f"config: {w}"]
+    assert cfg == parse_config({"rules": [{"name": "a", "direction": new}, {"name": "b", "direction": new}]})
+
+
+@pytest.mark.parametrize("raw", ["Above", "up", "", 1, True, None, ["above"], {"above": 1}])
+def test_bad_direction_values_are_config_errors(raw):
+    with pytest.raises(ConfigError) as exc:
+        parse_config({"rules": [{"name": "a", "direction": raw}]})
+    assert exc.value.problems == [f"rules[0].direction: expected one of either, rise, drop, got {raw!r}"]
+
+
+def test_check_prints_old_spellings_as_warnings(tmp_path, capsys):
+    f = tmp_path / "old.yaml"
+    f.write_text("rules:\n  - name: slow\n    direction: above\n")
+    assert main(["check", str(f)]) == 0
+    out = capsys.readouterr()
+    assert "OK (1 rule(s): slow)" in out.out
+    assert "  warning: rules[0].direction: 'above' is the old spelling of 'rise'" in out.out
+    assert "old spelling" not in out.err  # printed once, not logged as well
+
+
 def test_example_config_is_valid():
     cfg = load_config(ROOT / "config" / "example.yaml")
     assert len(cfg.rules) >= 2
@@ -57,7 +84,7 @@ def test_check_command(tmp_path, capsys):
     bad.write_text("rules:\n  - name: all\n    direction: sideways\n")
     assert main(["check", str(bad)]) == 2
     err = capsys.readouterr().err
-    assert "rules[0].direction: expected one of both, above, below, got 'sideways'" in err
+    assert "rules[0].direction: expected one of either, rise, drop, got 'sideways'" in err
     broken = tmp_path / "broken.yaml"
     broken.write_text("rules: [\n")
     assert main(["check", str(broken)]) == 2

@@ -14,7 +14,7 @@ from streamdet.daemon.state_store import Checkpoint, LocalStateStore, StateError
 
 def test_defaults_and_validation():
     s = parse_settings(parse_config({}))
-    assert s.health_address == "127.0.0.1:9464" and s.input_topics == ("metrics",)
+    assert s.health_address == "127.0.0.1:8734" and s.input_topics == ("metrics",)
     with pytest.raises(ConfigError) as exc:
         parse_settings(parse_config({"kafka": {"input_topics": [], "batch_size": 0, "colour": "red"},
                                      "health": {"address": "nowhere"}}))

@@ -73,7 +73,7 @@ def test_direction_filter():
     rng = np.random.default_rng(1)
     t = np.arange(400) * 60.0
     y = rng.normal(0, 1, 400) + np.where(t >= 300 * 60, -10.0, 0.0)
-    for direction, expect in (("above", 0), ("below", 1), ("both", 1)):
+    for direction, expect in (("rise", 0), ("drop", 1), ("either", 1)):
         eng = Engine(parse_config({"rules": [{"name": "r", "direction": direction, "warmup": "50 steps"}]}))
         events = eng.ingest(batch("m", t, y)) + eng.finish()
         assert sum(e.type.endswith("opened") for e in events) == expect, direction

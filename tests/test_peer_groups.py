@@ -349,3 +349,18 @@ def test_daemon_metrics_and_split_groups():
     assert split_groups([one, two]) == 1
     assert split_groups([one, Engine(_cfg())]) == 0
     assert split_groups([Engine(parse_config({"rules": [{"name": "a"}]}))]) == 0
+
+
+@pytest.mark.parametrize(("direction", "watched"), [("rise", (True, False)), ("drop", (False, True)),
+                                                    ("either", (True, True))])
+def test_rule_direction_selects_the_watched_sides_of_peer_outliers(direction, watched):
+    from streamdet.core.peer_groups import _need
+
+    rule = parse_config({"rules": [{"name": "web", "step": "5m", "direction": direction,
+                                    "peers": {"group_by": ["service"]}}]}).rules[0]
+    need = _need(rule)
+    assert tuple(np.isfinite(need)) == watched
+    # two sides share the rarity (Bonferroni), so each side needs a little more surprise
+    one_side = _need(parse_config({"rules": [{"name": "web", "step": "5m", "direction": "rise",
+                                              "peers": {"group_by": ["service"]}}]}).rules[0])[0]
+    assert need[np.isfinite(need)].min() == pytest.approx(one_side + (np.log10(2) if direction == "either" else 0))

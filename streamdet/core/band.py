@@ -68,7 +68,7 @@ class Band(ColumnState):
         return self.scale[ctx.r].astype(np.float64) * np.maximum(self._ratio(ctx), floor)
 
     def note_values(self, r: slice | np.ndarray, y: np.ndarray) -> None:
-        """Remember the lowest value seen (natural bounds)."""
+        """Remember the lowest value seen (a series never seen below zero gets no band below zero)."""
         self.low[r] = np.minimum(self.low[r], y)
 
     def update(self, ctx: StepContext, resid: np.ndarray, mask: np.ndarray) -> None:

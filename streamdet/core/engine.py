@@ -155,8 +155,8 @@ class Engine:
         # rarity is split evenly over the watched sides (Bonferroni). Fisher's statistic for
         # independent steps at that rarity is a cheap necessary condition (dependence only
         # makes evidence weaker), so the exact combination is computed for few rows.
-        self.rule_sides = np.array([2 if r.direction == "both" else 1 for r in rules], np.int64)
-        watched = np.array([[r.direction in (d, "both") for d in ("above", "below")] for r in rules])
+        self.rule_sides = np.array([2 if r.direction == "either" else 1 for r in rules], np.int64)
+        watched = np.array([[r.direction in (d, "either") for d in ("rise", "drop")] for r in rules])
         alpha = np.array([r.open_rarity for r in rules]) / self.rule_sides
         self.rule_need = np.where(watched, -np.log10(alpha)[:, None], np.inf)
         self.rule_crit = np.where(watched, np.array([[critical_statistic(a, r.confirm_steps)]

@@ -503,7 +503,7 @@ def _need(rule: Rule) -> np.ndarray:
     if p is None:
         return np.array([np.inf, np.inf])
     q = 0.5 * math.erfc(p.threshold / math.sqrt(2.0))
-    sides = 2 if rule.direction == "both" else 1
+    sides = 2 if rule.direction == "either" else 1
     need = -math.log10(max((2.0 * q) ** 2 / sides, 1e-300))
-    return np.array([need if rule.direction in ("both", "above") else np.inf,
-                     need if rule.direction in ("both", "below") else np.inf])
+    return np.array([need if rule.direction in ("either", "rise") else np.inf,
+                     need if rule.direction in ("either", "drop") else np.inf])

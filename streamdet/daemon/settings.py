@@ -52,7 +52,7 @@ class DaemonSettings:
     producer: Mapping[str, str] = field(default_factory=dict)
     state_dir: str = "./streamdet-state"
     on_rule_change: str = "error"  # state.on_rule_change: error | drop (see Engine.restore)
-    health_address: str = "127.0.0.1:9464"
+    health_address: str = "127.0.0.1:8734"
     source: str = "streamdet"
     log_format: str = "text"
     log_level: str = "info"
