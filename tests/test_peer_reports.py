@@ -140,6 +140,30 @@ def test_reopens_are_counted_per_kind():
     assert (s.detected, s.false, s.reopens) == (1, 0, 1)
 
 
+# ---------------------------------------------------------------- config/example.yaml
+
+
+def test_example_config_peers_block_parses_when_uncommented():
+    from pathlib import Path
+
+    import yaml
+
+    from streamdet.config import PeerParams
+    text = (Path(__file__).parent.parent / "config" / "example.yaml").read_text()
+    lines = text.splitlines()
+    at = next(i for i, line in enumerate(lines) if line.strip().startswith("# peers:"))
+    block = []
+    for line in lines[at:]:
+        if not line.strip().startswith("#"):
+            break
+        block.append(line.replace("# ", "", 1))
+    raw = yaml.safe_load("\n".join(lines[:at] + block + lines[at + len(block):]))
+    cfg = parse_config(raw)
+    rule = next(r for r in cfg.rules if r.name == "request-counts")
+    assert rule.peers == PeerParams(group_by=("service",), method="mad", threshold=3.5, min_members=5,
+                                    total="sum")
+
+
 # ---------------------------------------------------------------- daemon metrics
 
 
