@@ -175,7 +175,7 @@ def cmd_replay(args: argparse.Namespace) -> int:
     usable record. Output paths and formats are checked before any input is read."""
     from streamdet.codecs import format_for_path
     from streamdet.core.points import PointBatch
-    from streamdet.plots import plot_groups, plot_series
+    from streamdet.plots import plot_series
     from streamdet.replay import ProgressBar, format_summary, read_inputs, replay, write_events
 
     try:
@@ -236,10 +236,15 @@ def cmd_replay(args: argparse.Namespace) -> int:
     print(format_summary(result), file=sys.stderr if args.events == "-" else sys.stdout)
     if args.plot:
         paths = plot_series(result.engine, result.events, args.plot)
-        groups = plot_groups(result.engine, result.events, args.plot)
-        print(f"plots: {len(paths)} PNG file(s) in {args.plot}"
-              + (f", and {len(groups)} of peer groups with an outlier (group-*.png)" if groups else ""),
+        print(f"plots: {len(paths)} PNG file(s) in {args.plot}",
               file=sys.stderr if args.events == "-" else sys.stdout)
+    if args.plot:  # --- peer groups that had an outlier (issue 8)
+        from streamdet.group_plots import plot_groups
+
+        groups = plot_groups(result.engine, result.events, args.plot)
+        if groups:
+            print(f"plots: {len(groups)} PNG file(s) of peer groups with an outlier (group-*.png) in "
+                  f"{args.plot}", file=sys.stderr if args.events == "-" else sys.stdout)
     return REPLAY_OK
 
 
@@ -435,8 +440,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("inputs", nargs="+", help="CSV, JSON lines (.jsonl) or line-protocol (.lp) files")
     p.add_argument("--config", "-c", help="YAML config (default: built-in defaults)")
     p.add_argument("--events", "-e", help="write events as CloudEvents JSON lines here ('-' = stdout)")
-    p.add_argument("--plot", metavar="DIR", help="write a PNG per series that breached into DIR, and "
-                   "one per peer group that had an outlier (group-<group>.png)")
+    p.add_argument("--plot", metavar="DIR", help="write a PNG per series that breached into DIR")
     p.add_argument("--format", choices=FORMATS,
                    help="input format (default: from each file's extension, .otlp.json and .pb for "
                         "OTLP; required for others, e.g. .txt or Telegraf JSON)")

@@ -271,7 +271,8 @@ def write_plots(points: list[dict], cfg, out: str, fmt: str = "json") -> list[Pa
     units label the axes)."""
     from streamdet.codecs.readers import MessageReader
     from streamdet.core.engine import Engine
-    from streamdet.plots import plot_groups, plot_series
+    from streamdet.group_plots import plot_groups
+    from streamdet.plots import plot_series
 
     batch, _bad, _n = MessageReader(cfg.input).decode_messages([v for _k, v in messages(points, fmt)], str)
     eng = Engine(cfg, record_steps=True)

@@ -26,7 +26,7 @@ from streamdet.evaluate import (
     score_series,
     split_series,
 )
-from streamdet.plots import OUTLIER, outlier_spans, plot_groups
+from streamdet.group_plots import OUTLIER, outlier_spans, plot_groups
 from tests.test_peer_groups import DAY, STEP, fleet, outliers, run
 
 RULES = {"rules": [{"name": "web", "match": {"metric": "requests_per_second"}, "step": "5m",
@@ -66,7 +66,7 @@ def test_replay_plot_draws_the_group_with_an_outlier_only(tmp_path, capsys):
     cfg.write_text(json.dumps(RULES))  # JSON is YAML
     plots = tmp_path / "plots"
     assert main(["replay", str(data), "--config", str(cfg), "--plot", str(plots)]) == 0
-    assert "and 1 of peer groups with an outlier (group-*.png)" in capsys.readouterr().out
+    assert "plots: 1 PNG file(s) of peer groups with an outlier (group-*.png)" in capsys.readouterr().out
     pngs = sorted(p.name for p in plots.glob("group-*.png"))
     assert pngs == ['group-web_service=_checkout.png']  # nothing for 'search'
     import matplotlib.image as mpimg
