@@ -50,7 +50,7 @@ def main() -> None:
     alone = []
     for c in combos:
         found = run_all(plain, combination_config(CONFIG, c), args.jobs)
-        alone.extend((o, k, c.index, t) for o, k, _i, t in found)
+        alone.extend((o, k, c.index, t, kind) for o, k, _i, t, kind in found)
     separate = time.perf_counter() - start
     print(f"one engine per combination:   {separate:8.1f} s  ({len(combos) * len(pts) / separate:,.0f} points/s)")
     print(f"ratio {separate / one_engine:.2f}x; same openings: {sorted(swept) == sorted(alone)} "

@@ -259,6 +259,13 @@ def cmd_replay(args: argparse.Namespace) -> int:
         paths = plot_series(result.engine, result.events, args.plot, since=since, until=until)
         print(f"plots: {len(paths)} PNG file(s) and index.html in {args.plot}",
               file=sys.stderr if args.events == "-" else sys.stdout)
+    if args.plot:  # --- peer groups that had an outlier (issue 8)
+        from streamdet.group_plots import plot_groups
+
+        groups = plot_groups(result.engine, result.events, args.plot)
+        if groups:
+            print(f"plots: {len(groups)} PNG file(s) of peer groups with an outlier (group-*.png) in "
+                  f"{args.plot}", file=sys.stderr if args.events == "-" else sys.stdout)
     return REPLAY_OK
 
 

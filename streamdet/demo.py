@@ -9,7 +9,11 @@ weeks of history at 5-minute steps, then a live day with three incidents:
 * ``packing_queue_depth`` doubles at 06:00 for good (a second packing shift started): it
   breaches, then after ``relearn_after`` (2 h) the band moves to the new level and it closes.
 
-Four ``cpu_utilisation`` host series stay healthy. The demo starts the bundled broker on
+Four ``cpu_utilisation`` host series stay healthy. A fleet of 30 ``tea-api`` hosts
+(``requests_per_second``), launched at 00:00 on the live day, shares the shop's daily cycle; from
+09:30 to 12:00 host ``tea-api-17`` does a quarter of its peers' work. Its temporal band is still
+learning (a day of warm-up), but the rule's peer group judges it against the other 29 from the
+first step: one outlier, named, and nothing from the other hosts. The demo starts the bundled broker on
 127.0.0.1 (unless ``--bootstrap-servers`` is given), produces the scenario, runs the daemon,
 prints each event as it arrives, and writes PNG plots to ``--out``. With ``--format otlp_proto``
 (or ``otlp_json``) the scenario travels as OTLP requests, as an OpenTelemetry Collector's Kafka
@@ -33,10 +37,17 @@ from streamdet.local_broker import start_broker
 STEP = 300.0
 HISTORY_DAYS = 21
 LIVE_HOURS = 20
+FLEET_METRIC = "requests_per_second"
+FLEET_SERVICE = "tea-api"
+FLEET_SIZE = 30
+SLOW_HOST = "tea-api-17"
+SLOW_HOURS = (9.5, 12.0)  # live-day hours in which SLOW_HOST does SLOW_SHARE of the work
+SLOW_SHARE = 0.25
 
 
-def scenario(now: float, seed: int = 42) -> list[dict]:
-    """Points in time order, ending just before ``now``."""
+def scenario(now: float, seed: int = 42, fleet: bool = True) -> list[dict]:
+    """Points in time order, ending just before ``now``; ``fleet=False`` leaves out the
+    ``tea-api`` hosts."""
     rng = np.random.default_rng(seed)
     end = np.floor(now / 86400) * 86400 - 86400 + LIVE_HOURS * 3600  # live day: yesterday 00:00 UTC
     start = end - (HISTORY_DAYS * 24 + LIVE_HOURS) * 3600
@@ -61,12 +72,35 @@ def scenario(now: float, seed: int = 42) -> list[dict]:
     for i in range(4):
         series.append(("cpu_utilisation", {"host": f"web-{i + 1}"},
                        0.35 + 0.1 * daily + rng.normal(0, 0.02, t.size)))
+    hosts = fleet_series(t, live, day0, daily, np.random.default_rng(seed + 1)) if fleet else []
+    jitter = np.random.default_rng(seed + 2)  # own generators: the other series are as before
     points = []
     for j in range(t.size):
         for metric, labels, values in series:
             points.append({"metric": metric, "labels": labels, "time": float(t[j] + rng.uniform(0, 60)),
                            "value": round(float(values[j]), 4)})
+        if live[j]:
+            for labels, values in hosts:
+                points.append({"metric": FLEET_METRIC, "labels": labels,
+                               "time": float(t[j] + jitter.uniform(0, 60)),
+                               "value": round(float(values[j]), 3)})
     return points
+
+
+def fleet_series(t: np.ndarray, live: np.ndarray, day0: float, daily: np.ndarray,
+                 rng: np.random.Generator) -> list[tuple[dict, np.ndarray]]:
+    """The ``tea-api`` hosts behind one balancer: alike work (5 % noise around the shop's daily
+    cycle); ``SLOW_HOST`` falls behind during ``SLOW_HOURS``. Values before ``day0`` are unused."""
+    rps = 40 + 160 * daily
+    slow = live & (t >= day0 + SLOW_HOURS[0] * 3600) & (t < day0 + SLOW_HOURS[1] * 3600)
+    out = []
+    for i in range(FLEET_SIZE):
+        host = f"{FLEET_SERVICE}-{i + 1:02d}"
+        values = rps * rng.normal(1.0, 0.05, t.size)
+        if host == SLOW_HOST:
+            values = np.where(slow, values * SLOW_SHARE, values)
+        out.append(({"service": FLEET_SERVICE, "host": host}, values))
+    return out
 
 
 DEMO_RULES = {
@@ -74,6 +108,8 @@ DEMO_RULES = {
         {"name": "orders", "match": {"metric": "orders_per_minute"}, "step": "5m", "direction": "drop"},
         {"name": "latency", "match": {"metric": "*_seconds"}, "step": "5m", "direction": "rise",
          "clear": {"steps": 6}},
+        {"name": "tea-api-fleet", "match": {"metric": FLEET_METRIC}, "step": "5m",
+         "peers": {"group_by": ["service"]}},
         {"name": "everything-else", "step": "5m"},
     ]
 }
@@ -84,7 +120,7 @@ def messages(points: list[dict], fmt: str = "json") -> list[tuple[bytes, bytes]]
     ExportMetricsServiceRequest per step holding every series' point of that step, as a
     Collector's Kafka exporter sends a batch (one message key: the requests stay in order)."""
     if fmt == "json":
-        return [(orjson.dumps([pt["metric"], pt["labels"]]), orjson.dumps(pt)) for pt in points]
+        return [(message_key(pt), orjson.dumps(pt)) for pt in points]
     from streamdet.codecs.otlp import encode_gauges
 
     steps: dict[float, list[dict]] = {}
@@ -95,8 +131,16 @@ def messages(points: list[dict], fmt: str = "json") -> list[tuple[bytes, bytes]]
             for chunk in steps.values()]
 
 
+def message_key(pt: dict) -> bytes:
+    """Kafka key of a JSON point: the series, except that the fleet is keyed by its group label
+    (``service``), so the whole peer group lands on one partition and is judged together."""
+    if pt["metric"] == FLEET_METRIC:
+        return orjson.dumps([pt["metric"], pt["labels"]["service"]])
+    return orjson.dumps([pt["metric"], pt["labels"]])
+
+
 UNITS = {"checkout_latency_seconds": "s", "cpu_utilisation": "1", "orders_per_minute": "{order}/min",
-         "packing_queue_depth": "{parcel}"}
+         "packing_queue_depth": "{parcel}", FLEET_METRIC: "{request}/s"}
 
 
 def produce(bootstrap: str, topic: str, points: list[dict], fmt: str = "json") -> None:
@@ -164,7 +208,7 @@ def run_demo(out: str = "demo-out", bootstrap: str | None = None, produce_only: 
                            "logger": logging.getLogger("streamdet.librdkafka"),
                            "auto.offset.reset": "earliest", "session.timeout.ms": 6000})
         reader.subscribe([topics["out"]])
-        print("daemon running; breach events as they arrive on the output topic:\n")
+        print("daemon running; breach and peer-outlier events as they arrive on the output topic:\n")
         seen: Counter[str] = Counter()
         deadline = time.monotonic() + timeout
         idle_since = None
@@ -189,7 +233,12 @@ def run_demo(out: str = "demo-out", bootstrap: str | None = None, produce_only: 
         get = metrics.registry.get_sample_value
         print(f"\nsummary: {int(get('streamdet_records_in_total') or 0):,} records in, "
               f"{int(get('streamdet_points_accepted_total') or 0):,} points accepted, "
-              f"{seen['streamdet.breach.opened']} breaches opened, {seen['streamdet.breach.closed']} closed")
+              f"{seen['streamdet.breach.opened']} breaches opened, {seen['streamdet.breach.closed']} closed, "
+              f"{seen['streamdet.outlier.opened']} peer outlier(s) opened")
+        print(f"peer groups: {int(get('streamdet_peer_groups_judged_total') or 0):,} group steps judged "
+              f"({int(get('streamdet_peer_members_judged_total') or 0):,} member steps), "
+              f"{int(get('streamdet_outliers_open') or 0)} outlier(s) open at the end, "
+              f"{int(get('streamdet_peer_groups_split') or 0)} group(s) split over partitions")
         written = write_plots(points, cfg, out, fmt)
         print(f"plots: {len(written)} PNG file(s) in {out}/")
         return 0
@@ -201,6 +250,13 @@ def run_demo(out: str = "demo-out", bootstrap: str | None = None, produce_only: 
 
 def describe(doc: dict) -> str:
     d = doc["data"]
+    if doc["type"].startswith("streamdet.outlier."):
+        if doc["type"].endswith("opened"):
+            return (f"{doc['time']}  OUTLIER {doc['subject']:<46} {d['direction']:<5} its group "
+                    f"{d['group']} ({d['members_judged']} members): observed {d['observed']:.4g}, "
+                    f"group median {d['group_median']:.4g} (M {d['score']:+.1f})")
+        return (f"{doc['time']}  BACK    {doc['subject']:<46} among its peers after "
+                f"{d['duration_seconds'] / 60:.0f} min, worst M {d['worst_score']:+.1f}")
     if doc["type"].endswith("opened"):
         unit = f" {d['unit']}" if d.get("unit") else ""
         return (f"{doc['time']}  OPENED  {doc['subject']:<46} {d['direction']:<5} "
@@ -215,13 +271,15 @@ def write_plots(points: list[dict], cfg, out: str, fmt: str = "json") -> list[Pa
     units label the axes)."""
     from streamdet.codecs.readers import MessageReader
     from streamdet.core.engine import Engine
+    from streamdet.group_plots import plot_groups
     from streamdet.plots import plot_series
 
     batch, _bad, _n = MessageReader(cfg.input).decode_messages([v for _k, v in messages(points, fmt)], str)
     eng = Engine(cfg, record_steps=True)
     events = eng.ingest(batch)
     last = max(p["time"] for p in points)
-    return plot_series(eng, events, out, since=last - 2 * 86400)
+    since = last - 2 * 86400
+    return plot_series(eng, events, out, since=since) + plot_groups(eng, events, out, since=since)
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -294,7 +352,7 @@ def run_shadow_demo(out: str = "demo-out", bootstrap: str | None = None, timeout
         for f in admin.create_topics([NewTopic(topic, 1, 1)]).values():
             f.result(15)
         now = time.time()
-        points = scenario(now)
+        points = scenario(now, fleet=False)  # the shadow comparison is about single series
         day0 = np.floor(now / 86400) * 86400 - 86400
         history = [p for p in points if p["time"] < day0]
         live = [p for p in points if p["time"] >= day0]

@@ -1,9 +1,11 @@
 """Score the detector against labelled incident windows, and sweep rule settings in one engine.
 
 Labelled history in, figures out: windows detected and missed, false openings per series-day,
-re-opens, detection delay. The matching functions are pure (windows and event marks in, counts
-out) so other comparisons, such as against existing alerts, can reuse them. A sweep runs every
-combination of settings through ONE engine by duplicating each point under a hidden label.
+re-opens, detection delay. Openings are temporal breaches and peer-group outliers (a label naming
+a member series is detected by that member's outlier as by its breach). The matching functions
+are pure (windows and event marks in, counts out) so other comparisons, such as against existing
+alerts, can reuse them. A sweep runs every combination of settings through ONE engine by
+duplicating each point under a hidden label.
 
 >>> w = [Window(100.0, 200.0)]
 >>> m = [Mark(opened=True, time=150.0), Mark(opened=True, time=900.0)]
@@ -32,7 +34,7 @@ from streamdet.codecs.common import RecordError, parse_time
 from streamdet.config import Config, ConfigError, parse_config, read_config_file
 from streamdet.core.engine import Engine
 from streamdet.core.points import DecodeError, PointBatch, series_key
-from streamdet.events import CLOSED, OPENED
+from streamdet.events import CLOSED, OPENED, OUTLIER_CLOSED, OUTLIER_OPENED
 from streamdet.replay import CHUNK, read_inputs
 
 SWEEP_LABEL = "__sweep"  # hidden label that keeps the copies of one series apart in a sweep
@@ -62,10 +64,12 @@ class Window:
 
 @dataclass(frozen=True, slots=True, kw_only=True)
 class Mark:
-    """One opened or closed breach reduced to what matching needs: its decision time."""
+    """One opened or closed breach (or peer outlier, ``kind="outlier"``) reduced to what
+    matching needs: its decision time."""
 
     opened: bool
     time: float
+    kind: str = "breach"
 
 
 @dataclass(slots=True, kw_only=True)
@@ -128,7 +132,7 @@ def score_series(windows: Sequence[Window], marks: Iterable[Mark], *, slack: flo
     A window ``[s, e]`` is detected when an opening's decision time lies in ``[s - slack, e]``;
     its delay is the first such opening's time minus ``s`` (negative within the slack). An
     opening inside no ``[s - slack, e]`` is false. An opening at most ``reopen_gap`` seconds
-    after a close of the same series is a re-open.
+    after a close of the same series and kind (breach or outlier) is a re-open.
 
     >>> score_series([Window(0, 10)], [Mark(opened=True, time=-5.0)], slack=5.0, first=0.0,
     ...              last=DAY, step=60.0).delays
@@ -145,11 +149,11 @@ def score_series(windows: Sequence[Window], marks: Iterable[Mark], *, slack: flo
             score.detected += 1
             score.delays.append(float(opens[inside].min() - w.start))
     score.false = int(np.count_nonzero(~covered))
-    last_close: float | None = None
+    last_close: dict[str, float] = {}
     for m in ordered:
         if not m.opened:
-            last_close = m.time
-        elif last_close is not None and m.time - last_close <= reopen_gap:
+            last_close[m.kind] = m.time
+        elif m.kind in last_close and m.time - last_close[m.kind] <= reopen_gap:
             score.reopens += 1
     return score
 
@@ -398,7 +402,9 @@ def prepare(points: PointBatch, combos: Sequence[Combination]) -> Prepared:
     return Prepared(pts, spans(pts), copies, meta, origin)
 
 
-Found = tuple[bool, str, int, float]  # (opened, original key, combination, decision time)
+Found = tuple[bool, str, int, float, str]  # (opened, original key, combination, time, kind)
+_KINDS = {OPENED: (True, "breach"), CLOSED: (False, "breach"), OUTLIER_OPENED: (True, "outlier"),
+          OUTLIER_CLOSED: (False, "outlier")}
 
 
 def run_engine(prep: Prepared, config: Config, index: np.ndarray | None = None) -> list[Found]:
@@ -424,26 +430,51 @@ def run_engine(prep: Prepared, config: Config, index: np.ndarray | None = None) 
     events.extend(engine.finish())
     out = []
     for e in events:
-        if e.type not in (OPENED, CLOSED):
+        if e.type not in _KINDS:
             continue
+        opened, kind = _KINDS[e.type]
         key, combo = prep.origin.get(e.series, (e.series, 0))
-        out.append((e.type == OPENED, key, combo, float(e.time)))
+        out.append((opened, key, combo, float(e.time), kind))
     return out
 
 
-def split_series(points: PointBatch, groups: int) -> list[np.ndarray]:
+def peer_units(prep: Prepared, config: Config) -> dict[str, str]:
+    """Original series key -> its peer group (rule name without the sweep suffix and the
+    ``group_by`` values), for series a rule with ``peers`` puts in a group: a group's members
+    must share one engine to be judged together."""
+    if not any(r.peers is not None for r in config.rules):
+        return {}
+    out = {}
+    for key, copies in prep.copies.items():
+        metric, labels = prep.meta[copies[0]]
+        lab = dict(labels)
+        i = config.rule_for(metric, lab)
+        p = None if i is None else config.rules[i].peers
+        if p is not None and all(g in lab for g in p.group_by):
+            name = config.rules[i].name
+            if SWEEP_LABEL in lab:  # a sweep copy: rule `<name>#<combination>`
+                name = name.rpartition("#")[0]
+            out[key] = series_key(name, tuple((g, lab[g]) for g in p.group_by))
+    return out
+
+
+def split_series(points: PointBatch, groups: int, together: Mapping[str, str] | None = None
+                 ) -> list[np.ndarray]:
     """Point indices per group of whole series, groups balanced by point count (greedy,
-    deterministic); empty groups dropped."""
+    deterministic); empty groups dropped. Series with the same ``together`` value (a peer
+    group) go to the same group."""
+    together = together or {}
     counts: dict[str, int] = {}
     for k in points.keys:
-        counts[k] = counts.get(k, 0) + 1
+        u = together.get(k, k)
+        counts[u] = counts.get(u, 0) + 1
     load = [0] * groups
     group_of: dict[str, int] = {}
     for k in sorted(counts, key=lambda k: (-counts[k], k)):
         g = load.index(min(load))
         group_of[k] = g
         load[g] += counts[k]
-    codes = np.fromiter((group_of[k] for k in points.keys), np.int64, count=len(points))
+    codes = np.fromiter((group_of[together.get(k, k)] for k in points.keys), np.int64, count=len(points))
     parts = [np.flatnonzero(codes == g) for g in range(groups)]
     return [p for p in parts if p.shape[0]]
 
@@ -461,15 +492,16 @@ def run_all(prep: Prepared, config: Config, jobs: int = 1, *,
             min_series_per_job: int = MIN_SERIES_PER_JOB) -> list[Found]:
     """Run the engine over all series, split into up to ``jobs`` worker processes (fork).
 
-    Each worker builds its own engine over whole series, so the openings do not depend on
-    ``jobs``. A worker gets at least ``min_series_per_job`` engine series (copies included):
-    an engine pays per wave (one per step), so splitting few series only repeats that cost.
+    Each worker builds its own engine over whole series (and whole peer groups), so the
+    openings do not depend on ``jobs``. A worker gets at least ``min_series_per_job`` engine
+    series (copies included): an engine pays per wave (one per step), so splitting few series
+    only repeats that cost.
     """
     global _WORK
     groups = min(jobs, len(prep.spans), len(prep.meta) // max(1, min_series_per_job))
     if groups <= 1 or "fork" not in multiprocessing.get_all_start_methods():
         return run_engine(prep, config)
-    parts = split_series(prep.points, groups)
+    parts = split_series(prep.points, groups, peer_units(prep, config))
     _WORK = (prep, config, parts)
     try:
         with multiprocessing.get_context("fork").Pool(len(parts)) as pool:
@@ -513,8 +545,8 @@ def score_all(found: Iterable[Found], prep: Prepared, windows: Mapping[str, list
               combos: Sequence[Combination], slack: float) -> tuple[list[dict[str, SeriesScore]],
                                                                    list[SeriesScore]]:
     marks: dict[tuple[str, int], list[Mark]] = {}
-    for opened, key, combo, t in found:
-        marks.setdefault((key, combo), []).append(Mark(opened=opened, time=t))
+    for opened, key, combo, t, kind in found:
+        marks.setdefault((key, combo), []).append(Mark(opened=opened, time=t, kind=kind))
     series, overall = [], []
     for c in combos:
         per = {}

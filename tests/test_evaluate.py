@@ -199,11 +199,11 @@ def test_one_engine_sweep_gives_what_each_combination_gives_alone(tmp_path):
     plain = prepare(points, parse_sweep([]))
     for c in combos:
         alone = run_engine(plain, combination_config(CONFIG, c))
-        mine = sorted((o, k, t) for o, k, i, t in swept if i == c.index)
-        assert mine == sorted((o, k, t) for o, k, _i, t in alone), c.describe()
+        mine = sorted((o, k, t, kind) for o, k, i, t, kind in swept if i == c.index)
+        assert mine == sorted((o, k, t, kind) for o, k, _i, t, kind in alone), c.describe()
     by_combo = [sum(1 for f in swept if f[2] == c.index and f[0]) for c in combos]
     assert len(set(by_combo)) > 1, by_combo  # the settings make a difference on this data
-    assert {k for _o, k, _i, _t in swept} <= {"waterflow", "nile"}  # mapped back to the originals
+    assert {k for _o, k, _i, _t, _kind in swept} <= {"waterflow", "nile"}  # mapped back to the originals
 
 
 def test_worker_processes_give_the_same_openings_as_one_process(tmp_path):
