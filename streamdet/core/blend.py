@@ -51,11 +51,17 @@ class Blend(ColumnState):
     def update(self, rows: np.ndarray | slice, rule: np.ndarray, preds: np.ndarray, ready: np.ndarray,
                y: np.ndarray, scale: np.ndarray) -> None:
         """One fixed-share step; ``scale`` must be positive (it is the loss unit)."""
+        # (in place where possible: each (members, rows) temporary is a pass over memory)
         w = self.w[rows].T.astype(np.float64)
-        loss = np.minimum(np.abs(preds - y) / scale, LOSS_CAP)
+        v = preds - y
+        np.abs(v, out=v)
+        v /= scale
+        np.minimum(v, LOSS_CAP, out=v)  # the loss
+        v *= -per_rule(self.learning_rate, rule)
+        np.exp(v, out=v)
         wr = w * ready
         mass = wr.sum(axis=0)
-        v = wr * np.exp(-per_rule(self.learning_rate, rule) * loss)
+        v *= wr
         vsum = v.sum(axis=0)
         even = ready / np.maximum(ready.sum(axis=0), 1)
         with np.errstate(invalid="ignore", divide="ignore"):
@@ -64,10 +70,14 @@ class Blend(ColumnState):
         if decayed.any():
             v[:, decayed] = even[:, decayed]
         share = per_rule(self.share, rule)
-        mixed = (1.0 - share) * v + share * even
+        v *= 1.0 - share
+        even *= share
+        v += even  # the fixed-share mix
         empty = ~(mass > 0)
         if empty.any():
             mass[empty] = 1.0 / len(self.members)
-        new = np.where(ready, mixed * mass, w)
+        v *= mass
+        np.copyto(w, v, where=ready)
+        new = w
         new /= new.sum(axis=0)
         self.w[rows] = new.T
