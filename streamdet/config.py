@@ -262,6 +262,7 @@ class Config:
     input: InputConfig = field(default_factory=InputConfig)
     lag_resolution: float = 7200.0  # engine.lag_resolution: cell size of the lag rings
     extra: Mapping[str, Any] = field(default_factory=dict)  # sections owned by adapters
+    mutes: tuple[Any, ...] = ()  # silences and maintenance windows (core/mutes.py: Mute)
 
     def rule_for(self, metric: str, labels: Mapping[str, str]) -> int | None:
         """Index of the first rule whose match selects the series, or None."""
@@ -681,13 +682,19 @@ def parse_config(raw: object) -> Config:
         eng.bad("lag_resolution", f"must divide one day evenly (e.g. 1h, 2h, 30m), got {lag_resolution:g} s")
         lag_resolution = 7200.0
     eng.done()
+    # --- mutes (silences and maintenance windows, streamdet/core/mutes.py)
+    from streamdet.core.mutes import parse_mutes
+
+    mutes, mute_problems = parse_mutes(top.get("mutes", None))
+    problems.extend(mute_problems)
+    # --- end mutes
     extra = {name: top.get(name, None) for name in ADAPTER_SECTIONS}
     extra = {k: v for k, v in extra.items() if v is not None}
     top.done()
     if problems:
         raise ConfigError(problems)
     return Config(rules=tuple(rules), series=series, input=input_cfg,
-                  lag_resolution=lag_resolution, extra=extra)
+                  lag_resolution=lag_resolution, extra=extra, mutes=mutes)
 
 
 class _UniqueKeyLoader(yaml.SafeLoader):
