@@ -81,6 +81,10 @@ class Metrics:
                                    "Peer groups with members in more than one input partition (judged "
                                    "per partition: key the input by the group labels)")
         self.state_bytes = g("state_bytes", "Bytes of engine state arrays")
+        # mutes (silences and maintenance windows)
+        self.mutes_active = g("mutes_active", "Mutes in force at the partitions' data time (the most "
+                              "of any partition)")
+        self.steps_muted = c("steps_muted", "Closed steps that fell in a mute (no breach opens)")
         self.lag = g("consumer_lag_messages", "Messages between the consumer and the end of the partition",
                      ["topic", "partition"])
         self.since_checkpoint = g("seconds_since_checkpoint", "Seconds since the last durable checkpoint")
@@ -121,11 +125,16 @@ class HealthServer:
     def __init__(self, metrics: Metrics, ready, host: str, port: int, routes=None) -> None:
         metrics_app = make_wsgi_app(metrics.registry)
         routes = dict(routes or {})  # extra WSGI apps by path (shadow mode: the alert webhook)
+        # a route ending in "/" also serves every path below it (mutes: /mutes/{id})
+        prefixes = [(p, a) for p, a in routes.items() if p.endswith("/")]
 
         def app(environ, start_response):
             path = environ.get("PATH_INFO", "")
             if path in routes:
                 return routes[path](environ, start_response)
+            for prefix, route in prefixes:
+                if path.startswith(prefix):
+                    return route(environ, start_response)
             if path == "/healthz":
                 start_response("200 OK", [("Content-Type", "text/plain")])
                 return [b"ok\n"]
