@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+import yaml
 
 from streamdet.config import ConfigError, parse_config
 from streamdet.core.engine import Engine, SnapshotError, encode_snapshot
@@ -210,6 +211,18 @@ def test_no_mute_covering_the_wave_costs_no_matching():
 def test_hostile_mutes_in_the_config_name_the_key(raw, why):
     with pytest.raises(ConfigError, match=why):
         parse_config({"rules": RULES, "mutes": [raw]})
+
+
+def load_config_text(text):
+    return parse_config(yaml.safe_load(text))
+
+
+def test_yaml_timestamps_need_an_offset():
+    ok = load_config_text("mutes: [{match: {metric: x}, start: 2024-05-01T22:00:00Z, "
+                          "end: 2024-05-02T02:00:00+02:00}]")
+    assert (ok.mutes[0].start, ok.mutes[0].end) == (1714600800.0, 1714600800.0 + 7200)
+    with pytest.raises(ConfigError, match=r"mutes\[0\]\.start: give a UTC offset"):
+        load_config_text("mutes: [{match: {metric: x}, start: 2024-05-01 22:00:00, end: 2e9}]")
 
 
 def test_config_mutes_must_be_a_list_with_unique_ids():

@@ -77,6 +77,11 @@ def _time(raw: object, path: str, problems: list[str]) -> float | None:
     """Epoch seconds from a number or an RFC 3339 string with a UTC offset."""
     if isinstance(raw, bool):
         raw = None
+    if isinstance(raw, datetime):  # YAML reads an unquoted timestamp as a datetime
+        if raw.tzinfo is None:
+            problems.append(f"{path}: give a UTC offset (e.g. 2024-05-01T22:00:00Z), got {raw}")
+            return None
+        raw = raw.timestamp()
     if isinstance(raw, int | float):
         value = float(raw)
     elif isinstance(raw, str) and len(raw) <= 64:
