@@ -179,6 +179,37 @@ def test_mutes_expire_by_data_time():
     assert eng.counters["mutes_expired"] == 1
 
 
+def test_finish_does_not_expire_mutes():
+    eng = engine(mute())
+    feed(eng, series(n=W0 + 2))
+    eng.finish()
+    assert "m1" in eng.mutes.entries
+
+
+def test_peer_groups_leave_muted_members_out():
+    rules = [{"name": "web", "step": "60s", "warmup": "30 steps",
+              "peers": {"group_by": ["zone"], "min_members": 3}}]
+    rng = np.random.default_rng(4)
+    keys = [f"w{i}" for i in range(6)]
+    labels = {k: ("latency", (("host", k), ("zone", "a"))) for k in keys}
+
+    def run(mutes):
+        eng = Engine(parse_config({"rules": rules, "mutes": mutes}))
+        events = []
+        for s in range(200):
+            y = 100.0 + rng.normal(0, 1, 6)
+            if s >= 100:
+                y[0] = 160.0  # w0 drifts away from its peers
+            events += eng.ingest(PointBatch(keys, np.full(6, T0 + s * STEP + 1), y, labels))
+        return eng, [e for e in events if "outlier" in e.type]
+
+    _eng, plain = run([])
+    assert [e.series for e in plain if e.type.endswith("opened")][:1] == ["w0"]
+    eng, muted = run([{"match": {"labels": {"host": "w0"}}, "start": T0, "end": T0 + 1e6}])
+    assert not muted
+    assert eng.counters["peer_members_judged"] < _eng.counters["peer_members_judged"]
+
+
 def test_no_mute_covering_the_wave_costs_no_matching():
     eng = engine(mute(start=10_000, end=10_100))
     feed(eng, series(n=40))

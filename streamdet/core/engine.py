@@ -544,6 +544,8 @@ class Engine:
         """Drop mutes no open step can fall in any more: the partition's clock minus grace is
         past their end plus the longest step (every step starting before the end has closed)."""
         horizon = self.clock - float(self.rule_grace.max())
+        if not math.isfinite(horizon):  # finish() closes steps with an infinite clock
+            return
         if not any(m.end <= horizon for m in self.mutes.entries.values()):
             return
         n = self.table.n
