@@ -34,7 +34,7 @@ from streamdet.core.evidence import EvidenceWindow, combined_surprise, critical_
 from streamdet.core.forecast import StepContext
 from streamdet.core.forecast.base import as_index
 from streamdet.core.judge import TemporalJudge
-from streamdet.core.mutes import MuteError, Mutes, mute_from_json
+from streamdet.core.mutes import Mute, MuteError, Mutes, mute_from_json
 from streamdet.core.points import MAX_TIME, MIN_TIME, PointBatch, shorten
 from streamdet.core.relevel import RunTracker
 from streamdet.core.series import SeriesTable
@@ -181,11 +181,11 @@ class Engine:
             self.parts.extend(self.peer_groups.parts)
         self.restore_report: RestoreReport | None = None  # set by restore()
         self.restore_events: list[BreachEvent] = []  # closed events restore() decided
-        # --- mutes (silences and maintenance windows): the table, a per-row match cache
-        # (version, rows known, hits (capacity, entries), starts, ends, learn) and the ids
-        # expired by data time since the daemon last looked
+        # --- mutes (silences and maintenance windows): the table; per mute, made when a wave
+        # first falls in its window, the rows already matched and which of them it selects;
+        # and the ids expired by data time since the daemon last looked
         self.mutes = Mutes(config.mutes)
-        self._mute_cache: tuple | None = None
+        self._mute_cols: dict[str, tuple[Mute, np.ndarray, np.ndarray]] = {}
         self.mutes_expired: list[str] = []
         # --- end mutes
 
@@ -197,8 +197,8 @@ class Engine:
             part.grow(cap)
             if part is not self.table:
                 part.reset(rows)
-        if self._mute_cache is not None and self._mute_cache[1].shape[0] >= cap:
-            self._mute_cache[1][rows] = False  # --- mutes: a reused row is another series
+        for _m, known, _hit in self._mute_cols.values():  # --- mutes: a reused row is another series
+            known[rows[rows < known.shape[0]]] = False
         t = self.table
         keep_rule = t.rule[rows].copy()
         t.reset(rows)
@@ -497,37 +497,42 @@ class Engine:
 
     def _mute_steps(self, closed: ClosedSteps) -> tuple[np.ndarray, np.ndarray] | None:
         """Per closed step: muted (no breach opens) and muted without learning; None when no
-        mute covers any of these steps. Matchers run once per row and mute set (cached)."""
+        mute covers any of these steps. A mute's matcher runs once per row (cached per mute,
+        so adding or removing one mute does not match the other mutes again)."""
         tab = self.table
         start = closed.k * tab.step[closed.rows]
-        cache = self._mute_cache
-        cap = tab.capacity
-        if cache is None or cache[0] != self.mutes.version or cache[1].shape[0] < cap:
-            entries = list(self.mutes.entries.values())
-            cache = (self.mutes.version, np.zeros(cap, dtype=bool),
-                     np.zeros((cap, len(entries)), dtype=bool), entries,
-                     np.array([m.start for m in entries]), np.array([m.end for m in entries]),
-                     np.array([m.learn for m in entries], dtype=bool))
-            self._mute_cache = cache
-        _ver, known, hits, entries, starts, ends, learn = cache
         lo, hi = float(start.min()), float(start.max())
-        if not ((starts <= hi) & (ends > lo)).any():
-            return None
+        cols = self._mute_cols
+        for gone in [i for i, c in cols.items() if c[0] is not self.mutes.entries.get(i)]:
+            del cols[gone]  # removed or replaced
         rows = closed.rows
-        new = np.unique(rows[~known[rows]])
-        for row in new.tolist():
-            meta = tab.meta[row]
-            if meta is not None:
-                metric, labels = meta
-                lab = dict(labels)
-                hits[row] = [m.selects(metric, lab) for m in entries]
-        known[new] = True
-        on = hits[rows] & (start[:, None] >= starts) & (start[:, None] < ends)
-        muted = on.any(axis=1)
-        if not muted.any():
+        muted = no_learn = None
+        for mid, m in self.mutes.entries.items():
+            if not (m.start <= hi and m.end > lo):
+                continue
+            col = cols.get(mid)
+            cap = tab.capacity
+            if col is None or col[1].shape[0] < cap:
+                known, hit = np.zeros(cap, dtype=bool), np.zeros(cap, dtype=bool)
+                if col is not None:  # the table grew
+                    known[:col[1].shape[0]], hit[:col[2].shape[0]] = col[1], col[2]
+                col = cols[mid] = (m, known, hit)
+            _m, known, hit = col
+            new = np.unique(rows[~known[rows]])
+            for row in new.tolist():
+                meta = tab.meta[row]
+                hit[row] = meta is not None and m.selects(meta[0], dict(meta[1]))
+            known[new] = True
+            on = hit[rows] & (start >= m.start) & (start < m.end)
+            if not on.any():
+                continue
+            muted = on if muted is None else muted | on
+            if not m.learn:
+                no_learn = on if no_learn is None else no_learn | on
+        if muted is None:
             return None
         self.counters["steps_muted"] += int(muted.sum())
-        return muted, (on & ~learn).any(axis=1)
+        return muted, np.zeros_like(muted) if no_learn is None else no_learn
 
     def _judge_muted(self, rows, k, y, muted, no_learn) -> list[BreachEvent]:
         """One wave with some steps muted. Muted steps open no breach. Without learning they

@@ -19,7 +19,8 @@ from typing import Any
 
 from streamdet.config import Match
 
-MAX_MUTES = 1000  # entries in one table (config and API together)
+MAX_MUTES = 100  # entries in one table (config and API together); each costs 2 bytes per series
+# of match cache while a wave falls in its window
 MAX_TEXT = 500  # characters of a comment or created_by
 MAX_ID = 100  # characters of an id
 MAX_PATTERN = 200  # characters of a glob or regular expression in a mute's matcher
