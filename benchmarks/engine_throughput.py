@@ -20,13 +20,19 @@ from streamdet.core.engine import Engine
 from streamdet.core.points import PointBatch
 
 
-def engine_run(n_series: int, n_steps: int, seed: int = 0,
-               recent_steps: int | None = None) -> tuple[float, int, Engine]:
+def engine_run(n_series: int, n_steps: int, seed: int = 0, recent_steps: int | None = None,
+               mute: str = "none") -> tuple[float, int, Engine]:
     rng = np.random.default_rng(seed)
     keys = [f'requests{{host="h{i:05d}"}}' for i in range(n_series)]
     series = {k: ("requests", (("host", k[15:-2]),)) for k in keys}
     base = rng.uniform(10, 1000, n_series)
-    raw: dict = {"rules": [{"name": "bench", "step": "60s", "warmup": "30 steps"}]}
+    # --mute: "none" (no table), "idle" (one mute of another service over the whole run: the
+    # matcher runs once per series, no step is muted) or "half" (half the hosts muted, learn false)
+    mutes = {"none": [],
+             "idle": [{"match": {"labels": {"service": "other"}}, "start": 0, "end": 4e9}],
+             "half": [{"match": {"labels": {"host": {"regex": "h[0-9]{4}[02468]"}}},
+                       "start": 0, "end": 4e9}]}[mute]
+    raw: dict = {"rules": [{"name": "bench", "step": "60s", "warmup": "30 steps"}], "mutes": mutes}
     if recent_steps is not None:  # engine.recent_steps (the series-band ring); None: the default
         raw["engine"] = {"recent_steps": recent_steps}
     eng = Engine(parse_config(raw))
@@ -71,13 +77,14 @@ def main() -> None:
     ap.add_argument("--river-steps", type=int, default=600)
     ap.add_argument("--recent-steps", type=int, default=None,
                     help="engine.recent_steps (0: no series-band ring; default: the config default)")
+    ap.add_argument("--mute", choices=("none", "idle", "half"), default="none")
     args = ap.parse_args()
-    secs, points, eng = engine_run(args.series, args.steps, recent_steps=args.recent_steps)
+    secs, points, eng = engine_run(args.series, args.steps, recent_steps=args.recent_steps, mute=args.mute)
     ours = points / secs
     print(f"engine: {points:,} points over {args.series:,} series in {secs:.2f} s "
           f"= {ours:,.0f} points/s ({1e9 / ours:.0f} ns/point)")
     print(f"late:   {eng.counters['points_late']:,} points dropped as late "
-          f"({eng.counters['steps_closed']:,} steps closed)")
+          f"({eng.counters['steps_closed']:,} steps closed, {eng.counters['steps_muted']:,} muted)")
     print(f"state:  {eng.state_bytes_per_series()} bytes of arrays per series "
           f"({eng.stats()['series_active']:,} series active)")
     print(f"rss:    {resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024:.0f} MiB peak")

@@ -268,6 +268,7 @@ class Config:
     recent_steps: int = 0  # engine.recent_steps: steps per series kept for /series bands (0: none)
     extra: Mapping[str, Any] = field(default_factory=dict)  # sections owned by adapters
     warnings: tuple[str, ...] = field(default=(), compare=False)  # accepted, but should be changed
+    mutes: tuple[Any, ...] = ()  # silences and maintenance windows (core/mutes.py: Mute)
 
     def rule_for(self, metric: str, labels: Mapping[str, str]) -> int | None:
         """Index of the first rule whose match selects the series, or None."""
@@ -700,6 +701,12 @@ def parse_config(raw: object) -> Config:
         lag_resolution = 7200.0
     recent_steps = eng.number("recent_steps", 0, lo=0, hi=100_000, integer=True)  # series bands
     eng.done()
+    # --- mutes (silences and maintenance windows, streamdet/core/mutes.py)
+    from streamdet.core.mutes import parse_mutes
+
+    mutes, mute_problems = parse_mutes(top.get("mutes", None))
+    problems.extend(mute_problems)
+    # --- end mutes
     extra = {name: top.get(name, None) for name in ADAPTER_SECTIONS}
     extra = {k: v for k, v in extra.items() if v is not None}
     top.done()
@@ -709,7 +716,7 @@ def parse_config(raw: object) -> Config:
         log.warning("config: %s", w)
     return Config(rules=tuple(rules), series=series, input=input_cfg,
                   lag_resolution=lag_resolution, recent_steps=int(recent_steps), extra=extra,
-                  warnings=tuple(warnings))
+                  warnings=tuple(warnings), mutes=mutes)
 
 
 class _UniqueKeyLoader(yaml.SafeLoader):

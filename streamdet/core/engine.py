@@ -34,6 +34,7 @@ from streamdet.core.evidence import EvidenceWindow, combined_surprise, critical_
 from streamdet.core.forecast import StepContext
 from streamdet.core.forecast.base import as_index
 from streamdet.core.judge import TemporalJudge
+from streamdet.core.mutes import Mute, MuteError, Mutes, mute_from_json
 from streamdet.core.points import MAX_TIME, MIN_TIME, PointBatch, shorten
 from streamdet.core.recent import RecentBand, RecentSteps
 from streamdet.core.relevel import RunTracker
@@ -186,6 +187,13 @@ class Engine:
             self.parts.extend(self.peer_groups.parts)
         self.restore_report: RestoreReport | None = None  # set by restore()
         self.restore_events: list[BreachEvent] = []  # closed events restore() decided
+        # --- mutes (silences and maintenance windows): the table; per mute, made when a wave
+        # first falls in its window, the rows already matched and which of them it selects;
+        # and the ids expired by data time since the daemon last looked
+        self.mutes = Mutes(config.mutes)
+        self._mute_cols: dict[str, tuple[Mute, np.ndarray, np.ndarray]] = {}
+        self.mutes_expired: list[str] = []
+        # --- end mutes
 
     # ------------------------------------------------------------ series lifecycle
 
@@ -195,6 +203,8 @@ class Engine:
             part.grow(cap)
             if part is not self.table:
                 part.reset(rows)
+        for _m, known, _hit in self._mute_cols.values():  # --- mutes: a reused row is another series
+            known[rows[rows < known.shape[0]]] = False
         t = self.table
         keep_rule = t.rule[rows].copy()
         t.reset(rows)
@@ -445,6 +455,8 @@ class Engine:
         events = self._judge_waves(closed)
         if self.peer_groups is not None:  # group steps complete at this clock
             events.extend(self.peer_groups.judge(self.clock))
+        if self.mutes:  # --- mutes
+            self._expire_mutes()
         return events
 
     def _judge_waves(self, closed: ClosedSteps) -> list[BreachEvent]:
@@ -460,8 +472,10 @@ class Engine:
             closed = ClosedSteps(rows[order], k[order], val[order])
         if not len(closed):
             return []
+        mute = self._mute_steps(closed) if self.mutes else None  # --- mutes: (muted, no learn)
         if self.peer_groups is not None:
-            self.peer_groups.collect(closed)
+            self.peer_groups.collect(closed if mute is None else ClosedSteps(
+                closed.rows[~mute[0]], closed.k[~mute[0]], closed.value[~mute[0]]))
         self.counters["steps_closed"] += len(closed)
         rows = closed.rows
         new_row = np.ones(rows.shape[0], dtype=bool)
@@ -470,20 +484,97 @@ class Engine:
         rank = np.arange(rows.shape[0]) - group_start
         events: list[BreachEvent] = []
         if rank.max() == 0:
+            if mute is not None:
+                return self._judge_muted(rows, closed.k, closed.value, *mute)
             events.extend(self._judge(rows, closed.k, closed.value))
             return events
         order = np.argsort(rank, kind="stable")
         bounds = np.searchsorted(rank[order], np.arange(rank.max() + 2))
         for w in range(rank.max() + 1):
             sel = order[bounds[w]:bounds[w + 1]]
+            if mute is not None:
+                events.extend(self._judge_muted(rows[sel], closed.k[sel], closed.value[sel],
+                                                mute[0][sel], mute[1][sel]))
+                continue
             events.extend(self._judge(rows[sel], closed.k[sel], closed.value[sel]))
         return events
 
-    def _judge(self, rows: np.ndarray, k: np.ndarray, y: np.ndarray) -> list[BreachEvent]:
+    # ------------------------------------------------------------ mutes (core/mutes.py)
+
+    def _mute_steps(self, closed: ClosedSteps) -> tuple[np.ndarray, np.ndarray] | None:
+        """Per closed step: muted (no breach opens) and muted without learning; None when no
+        mute covers any of these steps. A mute's matcher runs once per row (cached per mute,
+        so adding or removing one mute does not match the other mutes again)."""
+        tab = self.table
+        start = closed.k * tab.step[closed.rows]
+        lo, hi = float(start.min()), float(start.max())
+        cols = self._mute_cols
+        for gone in [i for i, c in cols.items() if c[0] is not self.mutes.entries.get(i)]:
+            del cols[gone]  # removed or replaced
+        rows = closed.rows
+        muted = no_learn = None
+        for mid, m in self.mutes.entries.items():
+            if not (m.start <= hi and m.end > lo):
+                continue
+            col = cols.get(mid)
+            cap = tab.capacity
+            if col is None or col[1].shape[0] < cap:
+                known, hit = np.zeros(cap, dtype=bool), np.zeros(cap, dtype=bool)
+                if col is not None:  # the table grew
+                    known[:col[1].shape[0]], hit[:col[2].shape[0]] = col[1], col[2]
+                col = cols[mid] = (m, known, hit)
+            _m, known, hit = col
+            new = np.unique(rows[~known[rows]])
+            for row in new.tolist():
+                meta = tab.meta[row]
+                hit[row] = meta is not None and m.selects(meta[0], dict(meta[1]))
+            known[new] = True
+            on = hit[rows] & (start >= m.start) & (start < m.end)
+            if not on.any():
+                continue
+            muted = on if muted is None else muted | on
+            if not m.learn:
+                no_learn = on if no_learn is None else no_learn | on
+        if muted is None:
+            return None
+        self.counters["steps_muted"] += int(muted.sum())
+        return muted, np.zeros_like(muted) if no_learn is None else no_learn
+
+    def _judge_muted(self, rows, k, y, muted, no_learn) -> list[BreachEvent]:
+        """One wave with some steps muted. Muted steps open no breach. Without learning they
+        are skipped, unless the series' breach is open: then they are judged (so it can close)
+        but teach nothing."""
+        held = no_learn & (self.breaches.status[rows] != 0)
+        events = self._judge(rows[held], k[held], y[held], no_open=True, learn=False) if held.any() else []
+        keep = ~no_learn
+        if keep.any():
+            events += self._judge(rows[keep], k[keep], y[keep], no_open=muted[keep])
+        return events
+
+    def _expire_mutes(self) -> None:
+        """Drop mutes no open step can fall in any more: the partition's clock minus grace is
+        past their end plus the longest step (every step starting before the end has closed)."""
+        horizon = self.clock - float(self.rule_grace.max())
+        if not math.isfinite(horizon):  # finish() closes steps with an infinite clock
+            return
+        if not any(m.end <= horizon for m in self.mutes.entries.values()):
+            return
+        n = self.table.n
+        steps = self.table.step[:n]
+        longest = float(np.nanmax(steps)) if n and not np.isnan(steps).all() else 0.0
+        gone = self.mutes.expire(horizon - longest)
+        if gone:
+            self.mutes_expired.extend(gone)
+            self.counters["mutes_expired"] += len(gone)
+
+    def _judge(self, rows: np.ndarray, k: np.ndarray, y: np.ndarray, *,
+               no_open: np.ndarray | bool | None = None, learn: bool = True) -> list[BreachEvent]:
         """One wave: at most one closed step per row, all judged together.
 
         points -> closed steps -> temporal judge (band, tail probabilities) -> evidence window
         -> shared open/clear/re-arm state -> events; then every part learns from the step.
+        Mutes: rows in ``no_open`` cannot open a breach; ``learn=False`` teaches nothing
+        (models, residual scale, tails, re-level tracking).
         """
         tab = self.table
         sel = as_index(rows)
@@ -499,6 +590,8 @@ class Engine:
         judged = (self.judge.band.n[sel] >= tab.warmup[sel]) & a.any_ready
         back = self.runs.returning(sel, start, y - a.centre, a.centre - a.lower, a.upper - a.centre)
         back &= judged & (self.breaches.status[sel] == 0)
+        if not learn:  # --- mutes: no return to a previous level either (that moves the models)
+            back[:] = False
         if back.any():  # back at the level before a re-level: no evidence, move back below
             a.p_up = np.where(back, 1.0, a.p_up)
             a.p_lo = np.where(back, 1.0, a.p_lo)
@@ -507,12 +600,15 @@ class Engine:
         threshold = self.rule_unusual[rule]
         unusual = np.stack([a.p_up < threshold, a.p_lo < threshold], axis=1)
         surprise = self._surprise(sel, judged, stat, rule, unusual, window)
-        trans = self.breaches.step(sel, judged, surprise, self.rule_need[rule], unusual, a.score,
+        need = self.rule_need[rule]
+        if no_open is not None:  # --- mutes: a muted step opens nothing (closing is unchanged)
+            need = np.where(np.asarray(no_open)[..., None], np.inf, need)
+        trans = self.breaches.step(sel, judged, surprise, need, unusual, a.score,
                                    start, step, self.rule_clear[rule], tab.rearm[sel])
         side = np.where(y > a.upper, 1, np.where(y < a.lower, -1, 0)) * (judged & ~back)
         in_run = self.runs.run[sel] != 0
-        rl = self.runs.step(sel, judged, side, y - a.centre, y - a.season, a.scale, tab.relearn[sel],
-                            start, step)
+        rl = self.runs.step(sel, judged if learn else judged & False, side, y - a.centre, y - a.season,
+                            a.scale, tab.relearn[sel], start, step)
         if self.log is not None:
             p_two = np.minimum(1.0, 2.0 * np.minimum(a.p_up, a.p_lo))
             self.log.add(rows, start, y, np.where(a.any_ready, a.centre, np.nan),
@@ -525,7 +621,8 @@ class Engine:
                                         np.where(judged, a.upper, np.nan)], axis=1),
                               self.breaches.status[sel])
         events = self._events(rows, start, step, y, a, surprise, window, threshold, trans)
-        self.judge.learn(ctx, y, a, judged, trans.side != 0, in_run)
+        if learn:
+            self.judge.learn(ctx, y, a, judged, trans.side != 0, in_run)
         self._relevel(rows, back, rl)
         return events
 
@@ -608,6 +705,7 @@ class Engine:
             "series_learning": int(learning.sum()) + len(self.pending),
             "breaches_open": int((live & (self.breaches.status[:n] != 0)).sum()),
             "outliers_open": 0 if self.peer_groups is None else self.peer_groups.stats()["outliers_open"],
+            "mutes_active": self.mutes.active_at(self.clock) if self.mutes else 0,
             "state_bytes": self.state_bytes_per_series() * int(live.sum()),
         }
 
@@ -675,6 +773,7 @@ class Engine:
             "counters": dict(self.counters),
             "pending": {str(k): list(v) for k, v in self.pending.items()},
             "units": {str(k): v for k, v in self.table.units.items()},  # formats: declared units
+            "mutes": [m.to_json() for m in self.mutes.api_entries()],  # the config's are re-read
         }
         return SnapshotParts(header, columns, layout, list(tab.keys), list(tab.meta), list(tab.free))
 
@@ -713,6 +812,10 @@ class Engine:
         eng.counters = Counter(header["counters"])
         eng.pending = {int(k): [tuple(p) for p in v] for k, v in header["pending"].items()}
         tab.units = {int(k): str(v) for k, v in header.get("units", {}).items()}  # formats
+        try:  # --- mutes: those added over the API (the config's come from the config)
+            eng.mutes.replace_api([mute_from_json(m) for m in header.get("mutes", [])])
+        except (MuteError, TypeError, AttributeError) as exc:
+            raise SnapshotError(f"snapshot holds a bad mute ({exc})") from None
         eng._reconcile_rules(header, on_rule_change)
         return eng
 

@@ -45,7 +45,7 @@ from streamdet.daemon.state_store import LocalStateStore, StateError, StateStore
 log = logging.getLogger("streamdet.daemon")
 TP = tuple[str, int]
 _COUNTER_METRICS = ("points_accepted", "points_late",  # engine counter = metric attribute
-                    "peer_groups_judged", "peer_members_judged")
+                    "peer_groups_judged", "peer_members_judged", "steps_muted")
 _DROP_REASONS = ("points_no_rule", "points_series_limit", "counter_samples_dropped", "points_bad_time")
 
 
@@ -112,6 +112,10 @@ class Daemon:
         if shadow is not None:
             self.shadow_settings = self.shadow_settings.on() if shadow else ShadowSettings()
         self.shadow = None
+        # --- mutes API: changes posted on the health port, applied by the loop between batches
+        from streamdet.daemon.mutes_api import MuteBoard
+
+        self.mute_board = MuteBoard(config.mutes)
 
     # ------------------------------------------------------------ configuration
 
@@ -153,8 +157,15 @@ class Daemon:
                      self.events_file or self.shadow_settings.topic, self.shadow_settings.webhook_path)
         if health:
             host, port = self.settings.health_host_port
-            routes = self.shadow.routes() if self.shadow else {}
+            routes = dict(self.shadow.routes()) if self.shadow else {}
             routes.update(self.series_routes())  # series bands: /series, /series/{key}/band.svg
+            if self.settings.mutes_api:  # --- mutes API
+                from streamdet.daemon.mutes_api import mutes_app
+
+                api = mutes_app(self.mute_board, allow_remote=self.settings.mutes_api_remote)
+                routes.update({"/mutes": api, "/mutes/": api})
+                log.info("mutes API on /mutes%s", " (remote clients allowed)"
+                         if self.settings.mutes_api_remote else " (loopback clients only)")
             server = HealthServer(self.metrics, self.ready, host, port, routes).start()
             self.health_port = server.port
             log.info("health on http://%s:%d (/metrics, /healthz, /readyz)", host, server.port)
@@ -180,6 +191,7 @@ class Daemon:
             while not self._stop.is_set():
                 msgs = self.consumer.consume(self.settings.batch_size, self.settings.poll_timeout)
                 self.sink.poll()
+                self._apply_mutes()  # --- mutes API: between batches, on every partition's engine
                 if msgs:
                     self._process(msgs)
                 self._checkpoint_progress()
@@ -236,6 +248,7 @@ class Daemon:
             ckpt = self.store.load(*key)
             if ckpt is None:
                 self.parts[key] = PartitionState(Engine(self.config))
+                self.parts[key].engine.mutes.replace_api(self.mute_board.adopt(()))  # --- mutes
                 log.info("assigned %s:%d with no checkpoint", *key)
                 continue
             try:
@@ -248,6 +261,7 @@ class Daemon:
                 path = getattr(self.store, "path", lambda *_: "the state store")(*key)
                 raise StartupError(f"{path}: cannot restore ({exc}); start it fresh with "
                                    f"--fresh-partition {key[0]}:{key[1]}") from None
+            engine.mutes.replace_api(self.mute_board.adopt(engine.mutes.api_entries()))  # --- mutes
             part = PartitionState(engine, ckpt.next_offset)
             part.counters = Counter(engine.counters)
             self.parts[key] = part
@@ -349,6 +363,9 @@ class Daemon:
             part.key_cache.settle(part.engine.table.knows)
             self.faults.hit("ingest")  # test-only (STREAMDET_FAULT): state moved, offset not yet
             self._count(part)
+            if part.engine.mutes_expired:  # --- mutes: ended by data time
+                self.mute_board.expired(part.engine.mutes_expired)
+                part.engine.mutes_expired.clear()
             if part.engine.dropped:
                 self._log_dropped(key, part.engine)
             self.sink.send(events, time.monotonic())
@@ -357,6 +374,20 @@ class Daemon:
             part.next_offset = items[-1].offset() + 1
             part.dirty = True
         self.metrics.batch_seconds.observe(time.monotonic() - started)
+
+    def _apply_mutes(self) -> None:
+        """Apply the mutes API's changes to every partition's engine (the HTTP threads only queue
+        them). A changed engine is checkpointed even without new input, so a restart keeps it."""
+        changes = self.mute_board.drain()
+        for what, arg in changes:
+            for part in self.parts.values():
+                if what == "add":
+                    part.engine.mutes.add(arg)
+                else:
+                    part.engine.mutes.remove(arg)
+                part.dirty = True
+            log.info("mute %s: %s", "added" if what == "add" else "removed",
+                     arg.id if what == "add" else arg)
 
     def _dead_letter(self, msg: Message, errors) -> None:
         assert self.sink is not None
@@ -536,8 +567,11 @@ class Daemon:
 
     def _update_gauges(self) -> None:
         stats = Counter()
+        most_mutes = 0  # --- mutes: partitions share the mutes, so the most, not the sum
         for part in self.parts.values():
-            stats.update(part.engine.stats())
+            one = part.engine.stats()
+            most_mutes = max(most_mutes, one["mutes_active"])
+            stats.update(one)
         m = self.metrics
         m.series_active.set(stats["series_active"])
         m.series_learning.set(stats["series_learning"])
@@ -545,5 +579,6 @@ class Daemon:
         m.outliers_open.set(stats["outliers_open"])
         m.peer_groups_split.set(split_groups([p.engine for p in self.parts.values()]))
         m.state_bytes.set(stats["state_bytes"])
+        m.mutes_active.set(most_mutes)
         m.since_checkpoint.set(time.monotonic() - self._checkpoint_done)
         m.ready.set(1 if self.ready()[0] else 0)

@@ -81,6 +81,10 @@ class Metrics:
                                    "Peer groups with members in more than one input partition (judged "
                                    "per partition: key the input by the group labels)")
         self.state_bytes = g("state_bytes", "Bytes of engine state arrays")
+        # mutes (silences and maintenance windows)
+        self.mutes_active = g("mutes_active", "Mutes in force at the partitions' data time (the most "
+                              "of any partition)")
+        self.steps_muted = c("steps_muted", "Closed steps that fell in a mute (no breach opens)")
         self.lag = g("consumer_lag_messages", "Messages between the consumer and the end of the partition",
                      ["topic", "partition"])
         self.since_checkpoint = g("seconds_since_checkpoint", "Seconds since the last durable checkpoint")

@@ -57,6 +57,8 @@ class DaemonSettings:
     log_format: str = "text"
     log_level: str = "info"
     alertmanager: AlertmanagerSettings | None = None  # output.alertmanager
+    mutes_api: bool = False  # health.mutes_api: GET/POST/DELETE /mutes on the health port
+    mutes_api_remote: bool = False  # health.mutes_api_remote: answer non-loopback clients too
 
     @property
     def health_host_port(self) -> tuple[str, int]:
@@ -163,6 +165,17 @@ def parse_settings(config: Config) -> DaemonSettings:
         h.bad("address", f"port must be 0..65535 (0: any free port), got {address!r}")
         address = d.health_address
     kw["health_address"] = address
+    # --- mutes API (streamdet/daemon/mutes_api.py): off by default, loopback only by default
+    kw["mutes_api"] = h.boolean("mutes_api", d.mutes_api)
+    kw["mutes_api_remote"] = h.boolean("mutes_api_remote", d.mutes_api_remote)
+    from streamdet.daemon.mutes_api import is_loopback
+
+    host = address.rpartition(":")[0] or "127.0.0.1"
+    if kw["mutes_api"] and not kw["mutes_api_remote"] and not is_loopback(host):
+        h.bad("mutes_api", f"the health address {address!r} is not a loopback address: anyone who "
+              "reaches it could silence alerts. Bind health.address to 127.0.0.1, or accept the risk "
+              "with health.mutes_api_remote: true")
+    # --- end mutes API
     h.done()
     o = _Section(config.extra.get("output"), "output", problems)
     kw["source"] = o.text("source", d.source)
