@@ -1,0 +1,179 @@
+"""The Kafka state store against the local broker: chunks, manifest last, damaged and unfinished
+snapshots, tombstones; then two daemons in one group whose partitions (and state) move."""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import re
+
+import pytest
+from confluent_kafka import OFFSET_BEGINNING, Consumer, KafkaError, Producer, TopicPartition
+from confluent_kafka.admin import AdminClient, ConfigResource, NewTopic
+
+from streamdet.config import parse_config
+from streamdet.core.engine import Engine
+from streamdet.daemon.kafka_store import KafkaStateStore, Manifest, chunk_key, manifest_key
+from streamdet.daemon.state_store import Checkpoint, StateError
+from tests.integration.kafka import unique
+from tests.integration.streams import DAEMON_RULES, as_batch, waterflow_points
+
+pytestmark = pytest.mark.broker
+
+
+def raw_records(broker, topic: str, partition: int = 0) -> list[tuple[str, bytes | None]]:
+    """Every (key, value) of a state partition, in log order, to the end-of-partition signal."""
+    c = Consumer({"bootstrap.servers": broker.bootstrap, "group.id": unique("raw"),
+                  "enable.partition.eof": True, "enable.auto.commit": False})
+    c.assign([TopicPartition(topic, partition, OFFSET_BEGINNING)])
+    out = []
+    try:
+        for _ in range(200):
+            for m in c.consume(1000, 0.5):
+                if m.error() is not None:
+                    if m.error().code() == KafkaError._PARTITION_EOF:
+                        return out
+                    continue
+                out.append((m.key().decode(), m.value()))
+        raise AssertionError("no end of partition")
+    finally:
+        c.close()
+
+
+def put(broker, topic: str, records) -> None:
+    p = Producer({"bootstrap.servers": broker.bootstrap})
+    for k, v in records:
+        p.produce(topic, key=k.encode(), value=v, partition=0)
+    assert p.flush(10) == 0
+
+
+_OPEN: list[KafkaStateStore] = []
+
+
+@pytest.fixture(autouse=True)
+def _close_stores():
+    yield
+    while _OPEN:
+        _OPEN.pop().close()
+
+
+def store(broker, topic=None, **kw) -> KafkaStateStore:
+    s = KafkaStateStore({"bootstrap.servers": broker.bootstrap}, topic or unique("state"),
+                        group_id=unique("g"), timeout=20.0, **kw)
+    _OPEN.append(s)
+    return s.open()
+
+
+def test_chunks_then_manifest_round_trip_and_tombstones(broker):
+    s = store(broker, chunk_bytes=100_000)
+    try:
+        snap = os.urandom(250_000)
+        s.save(Checkpoint("metrics", 3, 1234, snap))
+        recs = raw_records(broker, s.topic)
+        # 250,000 bytes in chunks of at most 100,000: three chunks, then the manifest, last
+        assert [k.rsplit("/", 1)[-1] for k, _ in recs[:3]] == ["0", "1", "2"]
+        assert [len(v) for _, v in recs[:3]] == [100_000, 100_000, 50_000]
+        assert recs[-1][0] == manifest_key("metrics", 3) and len(recs) == 4
+        m = Manifest.parse(recs[-1][1], "test")
+        assert m.chunks == tuple(k for k, _ in recs[:3]) and m.next_offset == 1234
+        # SHA-256 of the snapshot as hashlib computes it (Python standard library)
+        assert m.sha256 == hashlib.sha256(snap).hexdigest() and m.size == 250_000
+        # a second store (another instance) reads it back whole
+        other = store(broker, s.topic, chunk_bytes=100_000)
+        got = other.load("metrics", 3)
+        assert got == Checkpoint("metrics", 3, 1234, snap)
+        assert other.load("metrics", 4) is None and other.load("other-topic", 3) is None
+        # the new owner writes the next snapshot: after its manifest, the old chunks get tombstones
+        snap2 = os.urandom(120_000)
+        other.save(Checkpoint("metrics", 3, 2000, snap2))
+        recs = raw_records(broker, s.topic)[4:]
+        assert [k.rsplit("/", 1)[-1] for k, _ in recs[:2]] == ["0", "1"] and recs[2][0] == manifest_key("metrics", 3)
+        assert sorted(k for k, v in recs[3:] if v is None) == sorted(m.chunks)
+        assert s.load("metrics", 3) == Checkpoint("metrics", 3, 2000, snap2)
+        other.close()
+    finally:
+        s.close()
+
+
+def test_unfinished_snapshot_is_ignored_and_later_tombstoned(broker):
+    s = store(broker, chunk_bytes=50_000)
+    try:
+        snap = os.urandom(80_000)
+        s.save(Checkpoint("in", 0, 10, snap))
+        # a newer snapshot whose writer died before its manifest: chunks only (same key space)
+        orphans = [chunk_key("in", 0, "ffffffffffffffff-dead00", i) for i in range(2)]
+        put(broker, s.topic, [(k, os.urandom(50_000)) for k in orphans])
+        fresh = store(broker, s.topic)
+        assert fresh.load("in", 0) == Checkpoint("in", 0, 10, snap)
+        fresh.save(Checkpoint("in", 0, 20, b"next"))
+        tombstoned = {k for k, v in raw_records(broker, s.topic) if v is None}
+        assert set(orphans) <= tombstoned
+        assert fresh.load("in", 0) == Checkpoint("in", 0, 20, b"next")
+        fresh.close()
+    finally:
+        s.close()
+
+
+@pytest.mark.parametrize("damage", ["flipped chunk", "missing chunk", "bad json", "format 9",
+                                    "other partition", "no fields"])
+def test_damaged_snapshots_are_refused_with_the_reason(broker, damage):
+    s = store(broker, chunk_bytes=10_000)
+    try:
+        snap = os.urandom(25_000)
+        s.save(Checkpoint("in", 1, 5, snap))
+        m = Manifest.parse(raw_records(broker, s.topic)[-1][1], "test")
+        if damage == "flipped chunk":  # same key, one byte changed: the checksum no longer matches
+            bad = bytearray(snap[10_000:20_000])
+            bad[7] ^= 1
+            put(broker, s.topic, [(m.chunks[1], bytes(bad))])
+            why = "does not match its manifest"
+        elif damage == "missing chunk":
+            put(broker, s.topic, [(m.chunks[2], None)])
+            why = "1 of 3 chunk(s) the manifest names are missing"
+        elif damage == "bad json":
+            put(broker, s.topic, [(manifest_key("in", 1), b"{not json")])
+            why = "manifest is not JSON"
+        elif damage == "format 9":
+            put(broker, s.topic, [(manifest_key("in", 1), m.to_bytes().replace(b'"format":1', b'"format":9'))])
+            why = "manifest format 9"
+        elif damage == "other partition":
+            put(broker, s.topic, [(manifest_key("in", 1), m.to_bytes().replace(b'"partition":1', b'"partition":2'))])
+            why = "belongs to in:2"
+        else:
+            put(broker, s.topic, [(manifest_key("in", 1), b'{"format": 1}')])
+            why = "lacks a usable field"
+        with pytest.raises(StateError, match=re.escape(why)) as info:
+            store(broker, s.topic).load("in", 1)
+        assert str(info.value).endswith("(start this partition fresh with --fresh-partition in:1)")
+        # other partitions are unaffected, and discarding the damaged one starts it fresh
+        s.discard("in", 1)
+        assert s.load("in", 1) is None
+    finally:
+        s.close()
+
+
+def test_state_topic_is_created_compacted_or_refused(broker):
+    s = store(broker, input_topics=())
+    admin = AdminClient({"bootstrap.servers": broker.bootstrap})
+    cfg = next(iter(admin.describe_configs([ConfigResource("topic", s.topic)]).values())).result(10)
+    assert cfg["cleanup.policy"].value == "compact"
+    s.close()
+    deleting = unique("state")
+    admin.create_topics([NewTopic(deleting, num_partitions=1, replication_factor=1,
+                                  config={"cleanup.policy": "delete"})])[deleting].result(10)
+    with pytest.raises(StateError, match="cleanup.policy is 'delete'"):
+        store(broker, deleting)
+
+
+def test_engine_snapshot_travels_whole(broker):
+    """A real engine's snapshot through the store restores to the same state (same bytes again)."""
+    eng = Engine(parse_config(DAEMON_RULES))
+    eng.ingest(as_batch(waterflow_points(sites=3)))
+    snap = eng.snapshot()
+    s = store(broker)  # default 900 KB chunks
+    try:
+        s.save(Checkpoint("in", 0, 99, snap))
+        got = store(broker, s.topic).load("in", 0)
+        assert Engine.restore(parse_config(DAEMON_RULES), got.snapshot).snapshot() == snap
+    finally:
+        s.close()
