@@ -166,7 +166,7 @@ class KafkaStateStore:
                                    **self.producer_extra})
         self._consumer = Consumer({**self.client, "group.id": f"{self.group_id}-state-loader",
                                    "enable.auto.commit": False, "enable.partition.eof": True,
-                                   "max.partition.fetch.bytes": 16 * 1024 * 1024})
+                                   "max.partition.fetch.bytes": 16 * 1024 * 1024, "fetch.wait.max.ms": 50})
         return self
 
     def _cleanup_policy(self, admin: AdminClient) -> str | None:
@@ -273,7 +273,8 @@ class KafkaStateStore:
                 if time.monotonic() > deadline:
                     raise StateError(f"state topic {self.topic}[{part}]: end of partition not reached in "
                                      f"{self.timeout:g} s while restoring {what} ({records} records read)")
-                for m in self._consumer.consume(1000, 0.5):
+                m = self._consumer.poll(0.5)  # poll, not consume(n): that waits for n records or the timeout
+                if m is not None:
                     err = m.error()
                     if err is not None:
                         if err.code() == KafkaError._PARTITION_EOF:
@@ -282,17 +283,16 @@ class KafkaStateStore:
                             return latest
                         if err.fatal():
                             raise StateError(f"state topic {self.topic}: {err.str()}")
-                        continue
-                    k = m.key() or b""
-                    records += 1
-                    if not k.startswith(mine):
-                        continue
-                    v = m.value()
-                    if v is None:
-                        latest.pop(k.decode(), None)
                     else:
-                        latest[k.decode()] = v
-                        nbytes += len(v)
+                        records += 1
+                        k = m.key() or b""
+                        if k.startswith(mine):
+                            v = m.value()
+                            if v is None:
+                                latest.pop(k.decode(), None)
+                            else:
+                                latest[k.decode()] = v
+                                nbytes += len(v)
                 if self.progress is not None and time.monotonic() - last_report > 0.5:
                     last_report = time.monotonic()
                     self.progress(what, records, nbytes)

@@ -161,7 +161,7 @@ def test_state_topic_is_created_compacted_or_refused(broker):
     deleting = unique("state")
     admin.create_topics([NewTopic(deleting, num_partitions=1, replication_factor=1,
                                   config={"cleanup.policy": "delete"})])[deleting].result(10)
-    with pytest.raises(StateError, match="cleanup.policy is 'delete'"):
+    with pytest.raises(StateError, match=re.escape("cleanup.policy is 'delete'")):
         store(broker, deleting)
 
 
@@ -177,3 +177,82 @@ def test_engine_snapshot_travels_whole(broker):
         assert Engine.restore(parse_config(DAEMON_RULES), got.snapshot).snapshot() == snap
     finally:
         s.close()
+
+
+# ---------------------------------------------------------------- two daemons, one group
+
+def kafka_daemon(broker, tmp_path, topics, group, state_topic, name):
+    from prometheus_client import CollectorRegistry
+
+    from streamdet.daemon.consumer import Daemon
+    from streamdet.daemon.health import Metrics
+    from streamdet.daemon.settings import parse_settings
+
+    inp, out, dlq = topics
+    cfg = parse_config({**DAEMON_RULES, "kafka": {
+        "bootstrap_servers": broker.bootstrap, "group_id": group, "input_topics": [inp],
+        "output_topic": out, "dead_letter_topic": dlq, "session_timeout": "6s",
+        "checkpoint_interval": "1s", "poll_timeout": "0.2s"},
+        "state": {"store": "kafka", "topic": state_topic, "chunk_bytes": 20_000,
+                  "dir": str(tmp_path / name)},
+        "health": {"address": "127.0.0.1:0"}})
+    metrics = Metrics(CollectorRegistry())
+    return Daemon(cfg, parse_settings(cfg), metrics=metrics), metrics
+
+
+def accepted(*metrics) -> float:
+    return sum(m.registry.get_sample_value("streamdet_points_accepted_total") or 0 for m in metrics)
+
+
+def test_partitions_and_their_state_move_between_two_daemons(broker, tmp_path):
+    import orjson
+
+    from streamdet.events import parse_cloudevent
+    from tests.integration.streams import as_messages, without_wall_clock
+    from tests.integration.test_daemon import Running, replay_events, wait_for
+
+    topics = broker.daemon_topics(partitions=4)
+    group, state_topic = unique("g"), unique("state")
+    points = waterflow_points(sites=8)  # river.datasets.WaterFlow, 8 copies keyed by site
+    n = len(points)
+    parts = [points[: n // 3], points[n // 3: 2 * n // 3], points[2 * n // 3:]]
+    broker.produce(topics[0], as_messages(parts[0]))
+    a, ma = kafka_daemon(broker, tmp_path, topics, group, state_topic, "a")
+    b, mb = kafka_daemon(broker, tmp_path, topics, group, state_topic, "b")
+    seen_ready: list[tuple[bool, str]] = []
+    with Running(a):
+        assert wait_for(lambda: accepted(ma) == len(parts[0]), 40)
+        # idle now: the engines hold exactly the first third; these are the states a new owner must get
+        assert wait_for(lambda: not any(p.dirty for p in a.parts.values()) and not a.writer.busy, 20)
+        before = {k: p.engine.snapshot() for k, p in a.parts.items()}
+        assert len(before) == 4
+        load = b.store.load
+
+        def load_and_look(topic, partition):
+            got = load(topic, partition)
+            seen_ready.append(b.ready())  # what /readyz says while this partition is restoring
+            return got
+
+        b.store.load = load_and_look
+        with Running(b):
+            assert wait_for(lambda: len(b.parts) >= 1 and len(a.parts) + len(b.parts) == 4, 40)
+            moved = set(b.parts)
+            # the new owner's engines are exactly the old owner's (same snapshot bytes again)
+            assert {k: b.parts[k].engine.snapshot() for k in moved} == {k: before[k] for k in moved}
+            assert any(b.parts[k].engine.stats()["series_active"] for k in moved)
+            broker.produce(topics[0], as_messages(parts[1]))
+            # each point read once in all: the new owner resumes at the offset the state covers
+            assert wait_for(lambda: accepted(ma, mb) == len(parts[0]) + len(parts[1]), 40)
+            a.stop()  # the first instance leaves; its partitions (and state) go to the second
+            assert wait_for(lambda: len(b.parts) == 4, 40)
+            broker.produce(topics[0], as_messages(parts[2]))
+            assert wait_for(lambda: accepted(ma, mb) == n, 40)
+            expected = {e.id: orjson.loads(e.to_json()) for e in replay_events(points)}
+            msgs = broker.read_all(topics[1], expect=len(expected), timeout=20)
+    assert not seen_ready[0][0] and seen_ready[0][1].startswith("restoring 1 partition(s): ")
+    assert "state records read" in seen_ready[0][1]
+    docs = [without_wall_clock(parse_cloudevent(m.value())) for m in msgs]
+    # the union of both instances' events is a single uninterrupted run's (replay of all points)
+    assert {d["id"] for d in docs} == set(expected)
+    for d in docs:  # duplicates (if any) only with the same id and the same content
+        assert d == without_wall_clock(expected[d["id"]])
