@@ -114,42 +114,52 @@ def test_unfinished_snapshot_is_ignored_and_later_tombstoned(broker):
         s.close()
 
 
-@pytest.mark.parametrize("damage", ["flipped chunk", "missing chunk", "bad json", "format 9",
-                                    "other partition", "no fields"])
-def test_damaged_snapshots_are_refused_with_the_reason(broker, damage):
+DAMAGES = {  # what is done to one partition's records -> the reason the loader must give
+    "flipped chunk": "does not match its manifest",
+    "missing chunk": "1 of 3 chunk(s) the manifest names are missing",
+    "bad json": "manifest is not JSON",
+    "format 9": "manifest format 9",
+    "other partition": "belongs to in:99",
+    "no fields": "lacks a usable field",
+}
+
+
+def test_damaged_snapshots_are_refused_with_the_reason(broker):
     s = store(broker, chunk_bytes=10_000)
-    try:
-        snap = os.urandom(25_000)
-        s.save(Checkpoint("in", 1, 5, snap))
-        m = Manifest.parse(raw_records(broker, s.topic)[-1][1], "test")
+    snaps = {}
+    for p, _damage in enumerate(DAMAGES):  # one input partition per kind of damage
+        snaps[p] = os.urandom(25_000)
+        s.save(Checkpoint("in", p, 5, snaps[p]))
+    manifests = {Manifest.parse(v, "t").partition: Manifest.parse(v, "t")
+                 for k, v in raw_records(broker, s.topic) if k.endswith("/m")}
+    bad = []
+    for p, damage in enumerate(DAMAGES):
+        m, mk = manifests[p], manifest_key("in", p)
         if damage == "flipped chunk":  # same key, one byte changed: the checksum no longer matches
-            bad = bytearray(snap[10_000:20_000])
-            bad[7] ^= 1
-            put(broker, s.topic, [(m.chunks[1], bytes(bad))])
-            why = "does not match its manifest"
+            flipped = bytearray(snaps[p][10_000:20_000])
+            flipped[7] ^= 1
+            bad.append((m.chunks[1], bytes(flipped)))
         elif damage == "missing chunk":
-            put(broker, s.topic, [(m.chunks[2], None)])
-            why = "1 of 3 chunk(s) the manifest names are missing"
+            bad.append((m.chunks[2], None))
         elif damage == "bad json":
-            put(broker, s.topic, [(manifest_key("in", 1), b"{not json")])
-            why = "manifest is not JSON"
+            bad.append((mk, b"{not json"))
         elif damage == "format 9":
-            put(broker, s.topic, [(manifest_key("in", 1), m.to_bytes().replace(b'"format":1', b'"format":9'))])
-            why = "manifest format 9"
+            bad.append((mk, m.to_bytes().replace(b'"format":1', b'"format":9')))
         elif damage == "other partition":
-            put(broker, s.topic, [(manifest_key("in", 1), m.to_bytes().replace(b'"partition":1', b'"partition":2'))])
-            why = "belongs to in:2"
+            bad.append((mk, m.to_bytes().replace(f'"partition":{p}'.encode(), b'"partition":99')))
         else:
-            put(broker, s.topic, [(manifest_key("in", 1), b'{"format": 1}')])
-            why = "lacks a usable field"
-        with pytest.raises(StateError, match=re.escape(why)) as info:
-            store(broker, s.topic).load("in", 1)
-        assert str(info.value).endswith("(start this partition fresh with --fresh-partition in:1)")
-        # other partitions are unaffected, and discarding the damaged one starts it fresh
-        s.discard("in", 1)
-        assert s.load("in", 1) is None
-    finally:
-        s.close()
+            bad.append((mk, b'{"format": 1}'))
+    put(broker, s.topic, bad)
+    reader = store(broker, s.topic)
+    for p, damage in enumerate(DAMAGES):
+        with pytest.raises(StateError, match=re.escape(DAMAGES[damage])) as info:
+            reader.load("in", p)
+        assert str(info.value).endswith(f"(start this partition fresh with --fresh-partition in:{p})")
+    # an undamaged partition still loads; discarding a damaged one starts it fresh
+    s.save(Checkpoint("in", 50, 6, b"fine"))
+    assert reader.load("in", 50) == Checkpoint("in", 50, 6, b"fine")
+    reader.discard("in", 0)
+    assert reader.load("in", 0) is None
 
 
 def test_state_topic_is_created_compacted_or_refused(broker):
@@ -256,3 +266,14 @@ def test_partitions_and_their_state_move_between_two_daemons(broker, tmp_path):
     assert {d["id"] for d in docs} == set(expected)
     for d in docs:  # duplicates (if any) only with the same id and the same content
         assert d == without_wall_clock(expected[d["id"]])
+
+
+def test_daemon_refuses_a_state_topic_that_is_not_compacted(broker, tmp_path, caplog):
+    topics = broker.daemon_topics()
+    state_topic = unique("state")
+    admin = AdminClient({"bootstrap.servers": broker.bootstrap})
+    admin.create_topics([NewTopic(state_topic, num_partitions=1, replication_factor=1,
+                                  config={"cleanup.policy": "delete"})])[state_topic].result(10)
+    d, _ = kafka_daemon(broker, tmp_path, topics, unique("g"), state_topic, "x")
+    assert d.run(install_signals=False, health=False) == 2
+    assert f"state topic {state_topic}: cleanup.policy is 'delete'" in caplog.text
