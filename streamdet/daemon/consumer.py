@@ -258,12 +258,10 @@ class Daemon:
             if key in self.fresh:
                 self.store.discard(*key)
                 log.warning("starting %s:%d fresh as asked (--fresh-partition)", *key)
-            self.restoring[key] = "starting"  # --- Kafka state store: /readyz while loading
-            try:
-                ckpt = self.store.load(*key)
-            finally:
-                self.restoring.pop(key, None)
+            self.restoring[key] = "starting"  # --- Kafka state store: /readyz until restored
+            ckpt = self.store.load(*key)  # (an error here or below stops the daemon: exit 2)
             if ckpt is None:
+                self.restoring.pop(key, None)
                 self.parts[key] = PartitionState(Engine(self.config))
                 log.info("assigned %s:%d with no checkpoint", *key)
                 continue
@@ -277,6 +275,7 @@ class Daemon:
                 path = getattr(self.store, "path", lambda *_: "the state store")(*key)
                 raise StartupError(f"{path}: cannot restore ({exc}); start it fresh with "
                                    f"--fresh-partition {key[0]}:{key[1]}") from None
+            self.restoring.pop(key, None)
             part = PartitionState(engine, ckpt.next_offset)
             part.counters = Counter(engine.counters)
             self.parts[key] = part
@@ -291,7 +290,8 @@ class Daemon:
         topic, _, partition = what.rpartition(":")
         key = (topic, int(partition))
         if key in self.restoring:
-            self.restoring[key] = f"{records} state records read, {nbytes / 1e6:.1f} MB of this partition's"
+            self.restoring[key] = (f"{records} state records read, {nbytes / 1e6:.1f} MB of this "
+                                   f"partition's; then the engine is restored")
 
     def _report_restore(self, key: TP, engine: Engine) -> None:
         """Log and count what the restore kept, dropped and reset; send the closings it decided."""
