@@ -52,15 +52,15 @@ class DaemonSettings:
     producer: Mapping[str, str] = field(default_factory=dict)
     state_dir: str = "./streamdet-state"
     on_rule_change: str = "error"  # state.on_rule_change: error | drop (see Engine.restore)
-    # --- Kafka state store (daemon/kafka_store.py): state.store, state.topic, state.chunk_bytes
-    state_store: str = "local"  # local (state.dir) | kafka (a compacted topic)
-    state_topic: str | None = None  # default <group_id>-state
-    state_chunk_bytes: int = 900_000
     health_address: str = "127.0.0.1:9464"
     source: str = "streamdet"
     log_format: str = "text"
     log_level: str = "info"
     alertmanager: AlertmanagerSettings | None = None  # output.alertmanager
+    # --- Kafka state store (daemon/kafka_store.py): state.store, state.topic, state.chunk_bytes
+    state_store: str = "local"  # local (state.dir) | kafka (a compacted topic)
+    state_topic: str | None = None  # default <group_id>-state
+    state_chunk_bytes: int = 900_000
 
     @property
     def health_host_port(self) -> tuple[str, int]:
