@@ -42,6 +42,15 @@ from streamdet.daemon.producer import Sink
 from streamdet.daemon.settings import DaemonSettings, redacted
 from streamdet.daemon.state_store import LocalStateStore, StateError, StateStore
 
+
+def make_store(settings: DaemonSettings) -> StateStore:
+    """The store ``state.store`` names: a local directory (default) or a compacted Kafka topic."""
+    if settings.state_store == "kafka":
+        from streamdet.daemon.kafka_store import kafka_store_from_settings
+
+        return kafka_store_from_settings(settings)
+    return LocalStateStore(settings.state_dir)
+
 log = logging.getLogger("streamdet.daemon")
 TP = tuple[str, int]
 _COUNTER_METRICS = ("points_accepted", "points_late",  # engine counter = metric attribute
@@ -86,7 +95,8 @@ class Daemon:
         self.config = config
         self.settings = settings
         self.metrics = metrics
-        self.store = store or LocalStateStore(settings.state_dir)
+        self.store = store or make_store(settings)
+        self.restoring: dict[TP, str] = {}  # --- Kafka state store: partitions loading, for /readyz
         self.events_file = events_file
         self.fresh = set(fresh_partitions)
         self.parts: dict[TP, PartitionState] = {}
@@ -134,6 +144,9 @@ class Daemon:
         self._stop.set()
 
     def ready(self) -> tuple[bool, str]:
+        if self.restoring:  # --- Kafka state store: read from another thread (the health server)
+            progress = "; ".join(f"{t}:{p} {text}" for (t, p), text in list(self.restoring.items()))
+            return False, f"restoring {len(self.restoring)} partition(s): {progress}"
         if not self._connected:
             return False, "not connected to the brokers"
         if not self.parts:
@@ -183,6 +196,17 @@ class Daemon:
                          alerts=None if self.shadow_settings.enabled else
                          alertmanager_sink(self.config, self.settings, self.metrics),
                          faults=self.faults, extensions=extensions)
+        # --- Kafka state store: check or create the state topic before joining the group
+        if hasattr(self.store, "open"):
+            try:
+                self.store.open()
+            except StateError as exc:
+                log.error("%s", exc)
+                self.sink.close(timeout=2.0)
+                if server is not None:
+                    server.stop()
+                return 2
+            self.store.progress = self._restore_progress
         self.consumer = Consumer(self.consumer_conf())
         self.consumer.subscribe(list(self.settings.input_topics), on_assign=self._on_assign,
                                 on_revoke=self._on_revoke, on_lost=self._on_lost)
@@ -234,6 +258,8 @@ class Daemon:
                 log.warning("consumer close: %s", exc)
             if server is not None:
                 server.stop()
+            if hasattr(self.store, "close"):  # --- Kafka state store
+                self.store.close()
         return code
 
     # ------------------------------------------------------------ rebalances
@@ -245,8 +271,10 @@ class Daemon:
             if key in self.fresh:
                 self.store.discard(*key)
                 log.warning("starting %s:%d fresh as asked (--fresh-partition)", *key)
-            ckpt = self.store.load(*key)
+            self.restoring[key] = "starting"  # --- Kafka state store: /readyz until restored
+            ckpt = self.store.load(*key)  # (an error here or below stops the daemon: exit 2)
             if ckpt is None:
+                self.restoring.pop(key, None)
                 self.parts[key] = PartitionState(Engine(self.config))
                 self.parts[key].engine.mutes.replace_api(self.mute_board.adopt(()))  # --- mutes
                 log.info("assigned %s:%d with no checkpoint", *key)
@@ -262,6 +290,7 @@ class Daemon:
                 raise StartupError(f"{path}: cannot restore ({exc}); start it fresh with "
                                    f"--fresh-partition {key[0]}:{key[1]}") from None
             engine.mutes.replace_api(self.mute_board.adopt(engine.mutes.api_entries()))  # --- mutes
+            self.restoring.pop(key, None)
             part = PartitionState(engine, ckpt.next_offset)
             part.counters = Counter(engine.counters)
             self.parts[key] = part
@@ -270,6 +299,14 @@ class Daemon:
                      engine.stats()["series_active"])
             self._report_restore(key, engine)
         consumer.incremental_assign(partitions)
+
+    def _restore_progress(self, what: str, records: int, nbytes: int) -> None:
+        """The Kafka state store's loader reports how far it has read (shown on /readyz)."""
+        topic, _, partition = what.rpartition(":")
+        key = (topic, int(partition))
+        if key in self.restoring:
+            self.restoring[key] = (f"{records} state records read, {nbytes / 1e6:.1f} MB of this "
+                                   f"partition's; then the engine is restored")
 
     def _report_restore(self, key: TP, engine: Engine) -> None:
         """Log and count what the restore kept, dropped and reset; send the closings it decided."""

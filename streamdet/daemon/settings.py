@@ -32,7 +32,7 @@ _SECRET = re.compile(r"(password|secret|key|token|oauthbearer\.config|credential
 _SECTIONS = ("kafka", "state", "health", "output", "logging")
 # Environment values are strings, except for these keys.
 _ENV_LISTS = {("kafka", "input_topics")}
-_ENV_NUMBERS = {("kafka", "batch_size")}
+_ENV_NUMBERS = {("kafka", "batch_size"), ("state", "chunk_bytes")}
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -59,6 +59,10 @@ class DaemonSettings:
     alertmanager: AlertmanagerSettings | None = None  # output.alertmanager
     mutes_api: bool = False  # health.mutes_api: GET/POST/DELETE /mutes on the health port
     mutes_api_remote: bool = False  # health.mutes_api_remote: answer non-loopback clients too
+    # --- Kafka state store (daemon/kafka_store.py): state.store, state.topic, state.chunk_bytes
+    state_store: str = "local"  # local (state.dir) | kafka (a compacted topic)
+    state_topic: str | None = None  # default <group_id>-state
+    state_chunk_bytes: int = 900_000
 
     @property
     def health_host_port(self) -> tuple[str, int]:
@@ -153,6 +157,14 @@ def parse_settings(config: Config) -> DaemonSettings:
     s = _Section(config.extra.get("state"), "state", problems)
     kw["state_dir"] = s.text("dir", d.state_dir)
     kw["on_rule_change"] = s.choice("on_rule_change", d.on_rule_change, ("error", "drop"))
+    kw["state_store"] = s.choice("store", d.state_store, ("local", "kafka"))
+    topic = s.get("topic", None)
+    if topic is not None and (not isinstance(topic, str) or not topic):
+        s.bad("topic", f"expected a topic name, got {topic!r}")
+        topic = None
+    kw["state_topic"] = topic
+    kw["state_chunk_bytes"] = s.number("chunk_bytes", d.state_chunk_bytes, lo=1024, hi=64 * 1024 * 1024,
+                                       integer=True)
     if (why := _unusable_directory(kw["state_dir"])) is not None:
         s.bad("dir", why)
     s.done()
