@@ -124,29 +124,29 @@ class EvidenceWindow(ColumnState):
             window: np.ndarray | int) -> np.ndarray:
         """Push one judged step per row; returns Fisher's statistic per side, shape ``(rows, 2)``.
         Rows not judged keep their state (their statistic is returned unchanged)."""
-        rows = row_numbers(r)
         if not judged.all():
             act = np.flatnonzero(judged)
-            self._push(rows[act], p_up[act], p_lo[act], take(window, act))
+            self._push(row_numbers(r)[act], p_up[act], p_lo[act], take(window, act))
             return 2.0 * self.sums[r]
-        self._push(rows, p_up, p_lo, window)
+        self._push(r, p_up, p_lo, window)  # (a slice where the wave's rows are contiguous)
         return 2.0 * self.sums[r]
 
-    def _push(self, rows: np.ndarray, p_up: np.ndarray, p_lo: np.ndarray,
+    def _push(self, r: slice | np.ndarray, p_up: np.ndarray, p_lo: np.ndarray,
               window: np.ndarray | int) -> None:
         up_smaller = p_up <= p_lo
-        neg = np.minimum(-np.log(np.where(up_smaller, p_up, p_lo)), NEG_LOG_CAP)
+        neg = np.minimum(-np.log(np.minimum(p_up, p_lo)), NEG_LOG_CAP)
         new16 = np.where(up_smaller, neg, -neg).astype(np.float16)
-        pos = self.pos[rows].astype(np.int64)
+        rows = row_numbers(r)
+        pos = self.pos[r].astype(np.int64)
         new = new16.astype(np.float64)
         old = self.ring[rows, pos].astype(np.float64)
         # each side's sum gains the new step's -ln p and loses the evicted step's
-        sums = self.sums[rows]
+        sums = self.sums[r]  # a view for a slice: updated in place
         sums[:, 0] += np.maximum(new, 0.0) - np.maximum(old, 0.0)
         sums[:, 1] += np.maximum(-new, 0.0) - np.maximum(-old, 0.0)
-        self.sums[rows] = np.maximum(sums, 0.0)
+        self.sums[r] = np.maximum(sums, 0.0)
         self.ring[rows, pos] = new16
-        self.pos[rows] = ((pos + 1) % window).astype(np.uint8)
+        self.pos[r] = ((pos + 1) % window).astype(np.uint8)
 
     def largest(self, rows: np.ndarray) -> np.ndarray:
         """The largest single-step ``-ln p`` in each row's window, per side, ``(rows, 2)``."""

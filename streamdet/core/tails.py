@@ -70,11 +70,15 @@ NORMAL_XI, NORMAL_SIGMA = (float(v[0]) for v in gpd_from_moments(
 def tail_quantile(zeta: np.ndarray, xi: np.ndarray, sigma: np.ndarray,
                   q: np.ndarray | float) -> np.ndarray:
     """``z`` with ``P(Z > z) = q``; never below the threshold (the body is not modelled)."""
-    ratio = np.maximum(zeta / q, 1.0)
+    log_ratio = np.log(np.maximum(zeta / q, 1.0))
     small = np.abs(xi) < 1e-6
-    safe_xi = np.where(small, 1.0, xi)
-    with np.errstate(over="ignore"):
-        excess = np.where(small, np.log(ratio), np.expm1(safe_xi * np.log(ratio)) / safe_xi)
+    if small.any():  # the exponential tail, the limit as xi -> 0
+        safe_xi = np.where(small, 1.0, xi)
+        with np.errstate(over="ignore"):
+            excess = np.where(small, log_ratio, np.expm1(safe_xi * log_ratio) / safe_xi)
+    else:
+        with np.errstate(over="ignore"):
+            excess = np.expm1(xi * log_ratio) / xi
     return THRESHOLD + sigma * excess
 
 
