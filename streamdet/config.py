@@ -517,6 +517,8 @@ def _parse_peers(s: _Section, step: float | None) -> PeerParams | None:
     )
     s.done()
     return params
+
+
 def _parse_routing(s: _Section) -> Routing:
     """The rule's ``labels``, ``annotations`` and ``severity`` keys (alert routing)."""
     labels: list[tuple[str, str]] = []

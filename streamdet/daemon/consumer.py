@@ -51,6 +51,7 @@ def make_store(settings: DaemonSettings) -> StateStore:
         return kafka_store_from_settings(settings)
     return LocalStateStore(settings.state_dir)
 
+
 log = logging.getLogger("streamdet.daemon")
 TP = tuple[str, int]
 _COUNTER_METRICS = ("points_accepted", "points_late",  # engine counter = metric attribute
