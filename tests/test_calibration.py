@@ -240,18 +240,23 @@ def test_brown_moments_match_simulated_autocorrelated_scores():
     assert combined_surprise(stat, np.array([3]), np.array([0.0]))[0] == pytest.approx(-np.log10(ref))
 
 
-def test_autocorrelated_noise_does_not_page():
-    # A slow wobble is not an incident. Noise following a first-order autoregression with lag-one
-    # correlation 0.85 (numpy), 5-minute steps for three weeks, defaults: at most 2 false breaches
-    # across ten series in weeks two and three (0.1 per series-week). Common practice, no source:
-    # a page a week per series gets the tool switched off.
-    rng = np.random.default_rng(14)
-    n_series, n_steps, rho = 10, 3 * 2016, 0.85
+def _ar1(rng, n_steps: int, n_series: int, rho: float) -> np.ndarray:
+    """Unit-variance first-order autoregression with lag-one correlation ``rho``, (steps, series)."""
     e = rng.standard_normal((n_steps, n_series)) * np.sqrt(1 - rho * rho)
     y = np.empty((n_steps, n_series))
     y[0] = rng.standard_normal(n_series)
     for i in range(1, n_steps):
         y[i] = rho * y[i - 1] + e[i]
+    return y
+
+
+def test_autocorrelated_noise_does_not_page():
+    # A slow wobble is not an incident. Noise following a first-order autoregression with lag-one
+    # correlation 0.85 (numpy), 5-minute steps for three weeks, defaults: at most 2 false breaches
+    # across ten series in weeks two and three (0.1 per series-week). Common practice, no source:
+    # a page a week per series gets the tool switched off.
+    n_series, n_steps = 10, 3 * 2016
+    y = _ar1(np.random.default_rng(14), n_steps, n_series, 0.85)
     t = np.repeat(np.arange(n_steps) * 300.0 + T0, n_series)
     keys = [f"w{i}" for i in range(n_series)] * n_steps
     _, events = run({"rules": [{"name": "w", "step": "5m"}]}, keys, t, 50 + y.ravel(), chunk=200_000)
@@ -266,13 +271,8 @@ def test_one_extreme_step_opens_on_autocorrelated_noise_too():
     # autoregression with lag-one correlation 0.5 built with numpy, four series; a single step of
     # 10 standard deviations must open at that step on every series (common practice, no source:
     # a spike ten times the usual size is worth a page). Brown's method alone opened 1 of 4.
-    rng = np.random.default_rng(21)
-    n_series, n_steps, rho = 4, 8 * 288, 0.5
-    e = rng.standard_normal((n_steps, n_series)) * np.sqrt(1 - rho * rho)
-    y = np.empty((n_steps, n_series))
-    y[0] = rng.standard_normal(n_series)
-    for i in range(1, n_steps):
-        y[i] = rho * y[i - 1] + e[i]
+    n_series, n_steps = 4, 8 * 288
+    y = _ar1(np.random.default_rng(21), n_steps, n_series, 0.5)
     t = np.repeat(np.arange(n_steps) * 300.0 + T0, n_series)
     keys = [f"a{i}" for i in range(n_series)] * n_steps
     spiked = y.copy()
