@@ -132,11 +132,7 @@ def warm_from_files(config: Config, paths: Sequence[str | Path], *, store: State
     started = time.perf_counter()
     points, errors, records = read_inputs(paths, config, fmt=fmt, now=now)
     part_of = partition_of_points(points, len(offsets), partitioner)
-    engines = build_engines(config, points, part_of, offsets)
-    result = WarmResult(points=len(points), records=records, errors=errors)
-    result.partitions = save_engines(store, topic, engines, offsets)
-    result.seconds = time.perf_counter() - started
-    return result
+    return _warm(config, points, part_of, offsets, store, topic, records, errors, started)
 
 
 def topic_layout(conf: Mapping[str, object], topic: str, timeout: float = 10.0) -> dict[int, tuple[int, int]]:
@@ -164,9 +160,8 @@ def read_topic(conf: Mapping[str, object], topic: str, config: Config, *, since:
     Returns points per partition, next offsets, decode errors and records."""
     from confluent_kafka import OFFSET_END, Consumer, KafkaError, TopicPartition
 
-    from streamdet.codecs import TimeRules, decode_influx
-    from streamdet.codecs.json import decode_json_messages
-    from streamdet.core.points import KeyCache, PointBuilder
+    from streamdet.codecs import TimeRules
+    from streamdet.codecs.readers import MessageReader
 
     layout = topic_layout(conf, topic)
     # Read to the end-of-partition signal rather than to the listed end offsets: that is where the
@@ -181,7 +176,7 @@ def read_topic(conf: Mapping[str, object], topic: str, config: Config, *, since:
         c.assign([TopicPartition(topic, p, starts[p] if starts[p] >= 0 else OFFSET_END) for p in layout])
         ends: dict[int, int] = {}
         batches: dict[int, list[PointBatch]] = {p: [] for p in layout}
-        caches = {p: KeyCache() for p in layout}
+        readers = {p: MessageReader(config.input) for p in layout}  # the daemon's decoders
         errors: list[DecodeError] = []
         records = 0
         deadline = time.monotonic() + limit_seconds
@@ -200,24 +195,15 @@ def read_topic(conf: Mapping[str, object], topic: str, config: Config, *, since:
                 if m.partition() in pending:
                     by_part.setdefault(m.partition(), []).append(m)
             for p, items in by_part.items():
-                if config.input.format == "influx":
-                    b = PointBuilder(caches[p])
-                    for m in items:
-                        d = decode_influx(m.value() or b"", prefix=f"{topic}/{p}@{m.offset()}", rules=rules,
-                                          precision=config.input.influx_precision, builder=b)
-                        records += d.records
-                        errors.extend(d.errors)
-                    batches[p].append(b.build())
-                else:
-                    def where(i: int, items=items, p=p) -> str:
-                        return f"{topic}/{p}@{items[i].offset()}"
+                def where(i: int, items=items, p=p) -> str:
+                    return f"{topic}/{p}@{items[i].offset()}"
 
-                    batch, bad, n = decode_json_messages([m.value() or b"" for m in items], where,
-                                                         rules=rules, cache=caches[p])
-                    records += n
-                    for _i, d in bad:
-                        errors.extend(d.errors)
-                    batches[p].append(batch)
+                batch, bad, n = readers[p].decode_messages([m.value() or b"" for m in items], where,
+                                                           rules=rules)
+                records += n
+                for _i, d in bad:
+                    errors.extend(d.errors)
+                batches[p].append(batch)
         if pending:
             raise RuntimeError(f"reading {topic}: partitions {sorted(pending)} not read to their end in time")
     finally:
@@ -241,6 +227,12 @@ def warm_from_topic(config: Config, conf: Mapping[str, object], source: str, *, 
         points = PointBatch.concat(per_part.values())
         offsets = {p: high for p, (_low, high) in topic_layout(conf, topic).items()}
         part_of = partition_of_points(points, len(offsets), partitioner)
+    return _warm(config, points, part_of, offsets, store, topic, records, errors, started)
+
+
+def _warm(config: Config, points: PointBatch, part_of: np.ndarray, offsets: Mapping[int, int],
+          store: StateStore, topic: str, records: int, errors: list, started: float) -> WarmResult:
+    """Engines per partition from the points, saved as checkpoints; the result with its timing."""
     engines = build_engines(config, points, part_of, offsets)
     result = WarmResult(points=len(points), records=records, errors=errors)
     result.partitions = save_engines(store, topic, engines, offsets)
